@@ -1,0 +1,93 @@
+"""Q/U <-> E/B on a flat periodic patch by FFT.
+
+Sign convention (ours, stated once here and tested):
+with ``phi = atan2(l_y, l_x)`` the angle of the multipole vector, x along columns and
+y along rows,
+
+    E(l) =  Q(l) cos 2phi + U(l) sin 2phi
+    B(l) = -Q(l) sin 2phi + U(l) cos 2phi
+
+and the inverse ``Q = E cos 2phi - B sin 2phi``, ``U = E sin 2phi + B cos 2phi``. The
+``l = 0`` mode carries no E/B and is set to zero in both directions. This is the
+standard flat-sky relation (e.g. REFERENCES.md, "Flat-sky E/B"). With rows as y this is
+the COSMO-like convention used by HEALPix once a gnomonic patch is cut with y towards
+north; see ``maps.healpix`` for how the sphere maps onto it.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from skymoments.maps.geometry import FlatPatch
+
+
+def _angles(patch: FlatPatch) -> tuple[np.ndarray, np.ndarray]:
+    two_phi = 2.0 * patch.phi_ell
+    return np.cos(two_phi), np.sin(two_phi)
+
+
+def qu_to_eb_fourier(qu: np.ndarray, patch: FlatPatch) -> np.ndarray:
+    """Fourier E/B modes of Q/U maps.
+
+    Parameters
+    ----------
+    qu : ndarray, shape (..., 2, npix, npix), microkelvin
+    patch : FlatPatch
+
+    Returns
+    -------
+    ndarray, complex, shape (..., 2, npix, npix)
+        ``numpy.fft.fft2`` of E and B (unnormalized), with the l = 0 mode zeroed.
+    """
+    qu = np.asarray(qu)
+    patch.check_maps(qu, "qu")
+    c, s = _angles(patch)
+    qf = np.fft.fft2(qu[..., 0, :, :])
+    uf = np.fft.fft2(qu[..., 1, :, :])
+    ef = qf * c + uf * s
+    bf = -qf * s + uf * c
+    ef[..., 0, 0] = 0.0
+    bf[..., 0, 0] = 0.0
+    return np.stack([ef, bf], axis=-3)
+
+
+def eb_fourier_to_qu(ebf: np.ndarray, patch: FlatPatch) -> np.ndarray:
+    """Real Q/U maps, shape (..., 2, npix, npix), from Fourier E/B modes (fft2 layout)."""
+    c, s = _angles(patch)
+    ef = np.array(ebf[..., 0, :, :], dtype=complex)
+    bf = np.array(ebf[..., 1, :, :], dtype=complex)
+    ef[..., 0, 0] = 0.0
+    bf[..., 0, 0] = 0.0
+    q = np.fft.ifft2(ef * c - bf * s).real
+    u = np.fft.ifft2(ef * s + bf * c).real
+    return np.stack([q, u], axis=-3)
+
+
+def qu_to_eb(qu: np.ndarray, patch: FlatPatch) -> np.ndarray:
+    """E/B maps from Q/U maps on a periodic patch.
+
+    Parameters
+    ----------
+    qu : ndarray, shape (..., 2, npix, npix), microkelvin
+    patch : FlatPatch
+
+    Returns
+    -------
+    ndarray, shape (..., 2, npix, npix), microkelvin
+        Real-space E and B maps (zero mean).
+    """
+    ebf = qu_to_eb_fourier(qu, patch)
+    return np.fft.ifft2(ebf).real
+
+
+def eb_to_qu(eb: np.ndarray, patch: FlatPatch) -> np.ndarray:
+    """Q/U maps from real-space E/B maps, the inverse of :func:`qu_to_eb` (up to the mean).
+
+    Parameters
+    ----------
+    eb : ndarray, shape (..., 2, npix, npix), microkelvin
+    patch : FlatPatch
+    """
+    eb = np.asarray(eb)
+    patch.check_maps(eb, "eb")
+    return eb_fourier_to_qu(np.fft.fft2(eb), patch)
