@@ -1,0 +1,1 @@
+"""One module per ``skymoments`` subcommand; each exposes ``main()`` (a Hydra task)."""
