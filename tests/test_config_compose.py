@@ -1,0 +1,73 @@
+"""Configs compose, and bad values fail before any work with the key named."""
+
+from __future__ import annotations
+
+import pytest
+from hydra import compose, initialize_config_dir
+from hydra.errors import ConfigCompositionException
+
+from skymoments.config import ConfigError, conf_dir, validate
+
+
+def _compose(*overrides: str):
+    with initialize_config_dir(config_dir=str(conf_dir()), version_base="1.3"):
+        return compose("config", overrides=list(overrides))
+
+
+@pytest.mark.parametrize("experiment", ["quickstart", "smoke"])
+def test_experiments_compose_and_validate(experiment):
+    cfg = validate(_compose(f"experiment={experiment}"))
+    assert cfg.name == experiment
+    assert cfg.patch.npix > 0
+
+
+def test_quickstart_is_the_documented_scenario():
+    # The quickstart is specified as 64x64 pixels of 3 arcmin, filaments, noise-free,
+    # r and the foreground amplitude drawn from priors, training from one image + synthesis.
+    cfg = validate(_compose("experiment=quickstart"))
+    assert (cfg.patch.npix, cfg.patch.pixel_arcmin) == (64, 3.0)
+    assert cfg.sky.foreground.name == "filaments"
+    assert cfg.prior.noise_uk_arcmin.dist == "fixed" and cfg.prior.noise_uk_arcmin.value == 0.0
+    assert cfg.prior.r.dist != "fixed" and cfg.prior.a_fg.dist != "fixed"
+    assert cfg.augment.source == "single_image" and cfg.augment.bank
+
+
+def test_negative_pixel_size_names_the_key():
+    cfg = _compose("patch.pixel_arcmin=-3")
+    with pytest.raises(ConfigError, match=r"patch\.pixel_arcmin"):
+        validate(cfg)
+
+
+def test_unknown_foreground_names_the_key_and_the_choices():
+    cfg = _compose("sky.foreground.name=nebula")
+    with pytest.raises(ConfigError, match=r"sky\.foreground\.name='nebula'.*filaments"):
+        validate(cfg)
+
+
+def test_wrong_type_names_the_full_key():
+    cfg = _compose("patch.npix=many")
+    with pytest.raises(ConfigError, match=r"patch"):
+        validate(cfg)
+
+
+def test_unknown_model_fails_at_compose_time():
+    with pytest.raises(ConfigCompositionException, match="model"):
+        _compose("model=no_such_net")
+
+
+def test_negative_width_names_the_key():
+    cfg = _compose("experiment=smoke", "model.mean.width=-4")
+    with pytest.raises(ConfigError, match=r"model\.mean\.width"):
+        validate(cfg)
+
+
+def test_bad_prior_names_the_key():
+    cfg = _compose("prior.r.low=0.3", "prior.r.high=0.1")
+    with pytest.raises(ConfigError, match=r"prior\.r"):
+        validate(cfg)
+
+
+def test_server_tracking_needs_a_uri():
+    cfg = _compose("tracking=server")
+    with pytest.raises(ConfigError, match=r"tracking\.uri"):
+        validate(cfg)
