@@ -8,8 +8,11 @@ y along rows,
     B(l) = -Q(l) sin 2phi + U(l) cos 2phi
 
 and the inverse ``Q = E cos 2phi - B sin 2phi``, ``U = E sin 2phi + B cos 2phi``. The
-``l = 0`` mode carries no E/B and is set to zero in both directions. This is the
-standard flat-sky relation (e.g. REFERENCES.md, "Flat-sky E/B"). With rows as y this is
+``l = 0`` mode carries no E/B and is set to zero in both directions; so is the Nyquist
+corner mode of an even-sized patch, and the Nyquist row and column use ``sin 2phi = 0``
+(see ``_angles`` for why: it keeps the transform unitary and commuting with the patch
+symmetries of ``maps.symmetry``). This is the standard flat-sky relation (e.g.
+REFERENCES.md, "Flat-sky E/B"). With rows as y this is
 the COSMO-like convention used by HEALPix once a gnomonic patch is cut with y towards
 north; see ``maps.healpix`` for how the sphere maps onto it.
 """
@@ -22,8 +25,26 @@ from skymoments.maps.geometry import FlatPatch
 
 
 def _angles(patch: FlatPatch) -> tuple[np.ndarray, np.ndarray]:
+    """``cos 2phi`` and ``sin 2phi`` on the fft2 grid, with the Nyquist lines made consistent.
+
+    For even ``npix`` the row ``ly = -l_nyq`` is also the row ``ly = +l_nyq`` (the two alias),
+    and likewise the column ``lx = -l_nyq``. ``atan2`` picks one alias, which makes the
+    transform neither unitary on those modes (the ``.real`` of the inverse FFT silently keeps
+    ``cos 2phi`` only) nor commuting with flips and 90-degree rotations. An assignment that is
+    the same for both aliases must have ``sin 2phi = 0``; we take ``cos 2phi = -1`` on the
+    Nyquist row and ``+1`` on the Nyquist column (the signs ``cos 2phi`` has everywhere on
+    them), which keeps the transform unitary. The corner mode ``(l_nyq, l_nyq)`` (a
+    checkerboard) changes sign relative to E/B under a 90-degree rotation, so no E/B split of
+    it commutes with the rotations: it is zeroed, like ``l = 0``.
+    """
     two_phi = 2.0 * patch.phi_ell
-    return np.cos(two_phi), np.sin(two_phi)
+    c, s = np.cos(two_phi), np.sin(two_phi)
+    if patch.npix % 2 == 0:
+        nyq = patch.npix // 2  # fft2 index of the -l_nyq row and column
+        c[nyq, :], s[nyq, :] = -1.0, 0.0
+        c[:, nyq], s[:, nyq] = 1.0, 0.0
+        c[nyq, nyq] = 0.0
+    return c, s
 
 
 def qu_to_eb_fourier(qu: np.ndarray, patch: FlatPatch) -> np.ndarray:
