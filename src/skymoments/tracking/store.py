@@ -1,0 +1,297 @@
+"""Talking to the store: clients, one-time SQLite set-up, retries, clear connection errors.
+
+Concurrency
+-----------
+Several processes (a joblib sweep) may share one SQLite store. Two things go wrong without
+care: MLflow creates the schema on first use, and two processes doing so at once fail or
+corrupt it; and SQLite allows one writer at a time, so a busy writer makes others raise
+``database is locked``. Hence :func:`prepare_store` creates the schema once under an
+inter-process ``fcntl`` lock (and switches the database to write-ahead logging, which lets
+readers and one writer proceed together), and :func:`with_retries` retries a locked call with
+exponential backoff.
+
+Servers
+-------
+An ``http(s)://`` store is probed once (``GET /health``, short timeout) before a run starts,
+so an unreachable server is reported at once with the URI and what to check, rather than
+after MLflow's own HTTP retries. Those retries are set by MLflow's environment variables
+``MLFLOW_HTTP_REQUEST_MAX_RETRIES`` (default 7), ``MLFLOW_HTTP_REQUEST_BACKOFF_FACTOR``
+(default 2) and ``MLFLOW_HTTP_REQUEST_TIMEOUT`` (seconds, default 120): with the defaults a
+server that goes away mid-run is declared gone only after several minutes.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import fcntl
+import logging
+import os
+import random
+import sqlite3
+import threading
+import time
+import urllib.error
+import urllib.request
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import TypeVar
+
+import mlflow
+from mlflow import MlflowClient
+from mlflow.exceptions import MlflowException
+
+from skymoments.tracking.settings import TrackingSettings, sqlite_path
+
+__all__ = [
+    "TrackingUnavailableError",
+    "client_for",
+    "ensure_experiment",
+    "mlflow_uris",
+    "prepare_store",
+    "with_retries",
+]
+
+log = logging.getLogger(__name__)
+T = TypeVar("T")
+
+_PREPARED: set[str] = set()
+_PREPARED_LOCK = threading.Lock()
+
+# Backoff for "database is locked": 12 tries, delays 0.05 s doubling up to 2 s (with jitter so
+# that contending processes spread out), about 15 s in all before giving up.
+_LOCK_RETRIES = 12
+_LOCK_BASE_DELAY = 0.05
+_LOCK_MAX_DELAY = 2.0
+_PROBE_TIMEOUT_S = 5.0
+
+
+class TrackingUnavailableError(RuntimeError):
+    """The tracking store cannot be reached (server down, wrong URI, network)."""
+
+
+def _chain(exc: BaseException) -> Iterator[BaseException]:
+    seen: set[int] = set()
+    current: BaseException | None = exc
+    while current is not None and id(current) not in seen:
+        seen.add(id(current))
+        yield current
+        current = current.__cause__ or current.__context__
+
+
+def is_locked_error(exc: BaseException) -> bool:
+    """True when ``exc`` (or its cause) is SQLite's ``database is locked``/busy error."""
+    for item in _chain(exc):
+        text = str(item).lower()
+        if "database is locked" in text or "database table is locked" in text:
+            return True
+        if "sqlite_busy" in text:
+            return True
+    return False
+
+
+_CONNECTION_MARKERS = (
+    "max retries exceeded",
+    "failed to establish a new connection",
+    "connection refused",
+    "connection reset",
+    "connection aborted",
+    "remotedisconnected",
+    "read timed out",
+    "timed out",
+    "name or service not known",
+    "temporary failure in name resolution",
+    "no route to host",
+)
+
+
+def is_connection_error(exc: BaseException) -> bool:
+    """True when ``exc`` says an HTTP tracking server could not be reached or went away."""
+    for item in _chain(exc):
+        if isinstance(item, (ConnectionError, TimeoutError, urllib.error.URLError)):
+            return True
+        name = type(item).__name__
+        if name in ("ConnectionError", "ConnectTimeout", "ReadTimeout", "NewConnectionError"):
+            return True
+        text = str(item).lower()
+        if any(marker in text for marker in _CONNECTION_MARKERS):
+            return True
+    return False
+
+
+def unavailable_message(uri: str, detail: str = "") -> str:
+    """A message naming the URI and what to check."""
+    hint = (
+        f"cannot reach the MLflow tracking server at {uri}. Check that `mlflow server` is "
+        "running there and reachable from this machine (host, port, firewall, proxy), and that "
+        "tracking.uri is right; or use tracking=local for the embedded store. MLflow retries "
+        "HTTP calls per MLFLOW_HTTP_REQUEST_MAX_RETRIES and MLFLOW_HTTP_REQUEST_TIMEOUT."
+    )
+    return f"{hint} ({detail})" if detail else hint
+
+
+def with_retries(settings: TrackingSettings, what: str, fn: Callable[[], T]) -> T:
+    """Call ``fn``; retry SQLite lock errors with backoff; translate lost connections.
+
+    Parameters
+    ----------
+    settings : TrackingSettings
+        The store ``fn`` talks to (named in errors).
+    what : str
+        What the call does, for messages (``"log metrics"``).
+    fn : callable
+        The store call, without arguments.
+
+    Raises
+    ------
+    TrackingUnavailableError
+        The HTTP server could not be reached.
+    MlflowException
+        Any other store error, or a lock that outlasted every retry.
+    """
+    for attempt in range(_LOCK_RETRIES):
+        try:
+            return fn()
+        except Exception as exc:
+            if settings.is_http and is_connection_error(exc):
+                raise TrackingUnavailableError(
+                    unavailable_message(settings.tracking_uri, f"while trying to {what}: {exc}")
+                ) from exc
+            if not is_locked_error(exc) or attempt == _LOCK_RETRIES - 1:
+                raise
+            delay = min(_LOCK_MAX_DELAY, _LOCK_BASE_DELAY * 2**attempt)
+            time.sleep(delay * random.uniform(0.5, 1.5))
+    raise AssertionError("unreachable")  # pragma: no cover
+
+
+@contextlib.contextmanager
+def _file_lock(path: Path) -> Iterator[None]:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    with open(path, "a+") as handle:
+        fcntl.flock(handle.fileno(), fcntl.LOCK_EX)
+        try:
+            yield
+        finally:
+            fcntl.flock(handle.fileno(), fcntl.LOCK_UN)
+
+
+def probe_server(uri: str, timeout: float = _PROBE_TIMEOUT_S) -> None:
+    """Check that an HTTP tracking server answers; raise :class:`TrackingUnavailableError`.
+
+    Any HTTP answer (even 401 or 404 behind a proxy) counts as reachable: only a failed
+    connection or a timeout is an error here.
+    """
+    try:
+        with urllib.request.urlopen(f"{uri}/health", timeout=timeout):  # noqa: S310
+            return
+    except urllib.error.HTTPError:
+        return
+    except (urllib.error.URLError, OSError, TimeoutError) as exc:
+        reason = getattr(exc, "reason", exc)
+        raise TrackingUnavailableError(unavailable_message(uri, f"{reason}")) from exc
+
+
+def prepare_store(settings: TrackingSettings) -> None:
+    """Make the store usable, once per process and URI.
+
+    For SQLite: create the folder, then, under an exclusive ``fcntl`` lock on
+    ``<db>.lock``, switch a new database to WAL and let MLflow create or upgrade the schema, so
+    concurrent first users never race. For HTTP: probe the server.
+    """
+    uri = settings.tracking_uri
+    with _PREPARED_LOCK:
+        if uri in _PREPARED:
+            return
+    if settings.is_http:
+        probe_server(uri)
+    else:
+        db = sqlite_path(uri)
+        if db is not None:
+            with _file_lock(db.with_name(db.name + ".lock")):
+                fresh = not db.exists() or db.stat().st_size == 0
+                if fresh:
+                    # WAL is a property of the database file: set once, it stays.
+                    with contextlib.closing(sqlite3.connect(db)) as con:
+                        con.execute("PRAGMA journal_mode=WAL")
+                client = MlflowClient(uri, registry_uri=uri)
+                # Touch both stores: MLflow creates or migrates the tables on first access.
+                client.search_experiments(max_results=1)
+                client.search_registered_models(max_results=1)
+    with _PREPARED_LOCK:
+        _PREPARED.add(uri)
+
+
+def client_for(settings: TrackingSettings) -> MlflowClient:
+    """A client bound to ``settings.tracking_uri`` for both tracking and the registry.
+
+    Binding the registry explicitly keeps a process-wide ``mlflow.set_registry_uri`` (or
+    ``MLFLOW_REGISTRY_URI``) from sending registrations elsewhere.
+    """
+    prepare_store(settings)
+    return MlflowClient(settings.tracking_uri, registry_uri=settings.tracking_uri)
+
+
+def _experiment_artifact_location(settings: TrackingSettings, name: str) -> str | None:
+    if settings.artifact_location is None:
+        return None
+    slug = "".join(ch if ch.isalnum() or ch in "-_." else "_" for ch in name) or "experiment"
+    return f"{settings.artifact_location.rstrip('/')}/{slug}"
+
+
+def ensure_experiment(client: MlflowClient, settings: TrackingSettings, name: str) -> str:
+    """Id of the experiment ``name``, created when missing (safe under concurrent creators).
+
+    A new experiment of a local store stores its artifacts in
+    ``<artifact_location>/<name with unsafe characters replaced>``.
+    """
+
+    def get_or_create() -> str:
+        experiment = client.get_experiment_by_name(name)
+        if experiment is not None:
+            if experiment.lifecycle_stage == "deleted":
+                raise ValueError(
+                    f"experiment {name!r} is deleted in {settings.tracking_uri}; restore it "
+                    "(mlflow experiments restore) or choose another tracking.experiment"
+                )
+            return experiment.experiment_id
+        try:
+            return client.create_experiment(
+                name, artifact_location=_experiment_artifact_location(settings, name)
+            )
+        except MlflowException as exc:
+            if "already exists" in str(exc).lower() or "unique constraint" in str(exc).lower():
+                # Another process created it between our lookup and create.
+                found = client.get_experiment_by_name(name)
+                if found is not None:
+                    return found.experiment_id
+            raise
+
+    return with_retries(settings, f"find or create experiment {name!r}", get_or_create)
+
+
+@contextlib.contextmanager
+def mlflow_uris(uri: str) -> Iterator[None]:
+    """Point MLflow's process-wide tracking and registry URIs at ``uri`` for a block.
+
+    Needed for the few MLflow calls that only read the global URIs (``mlflow.pytorch.log_model``
+    and ``load_model``). The previous state, including the ``MLFLOW_TRACKING_URI`` and
+    ``MLFLOW_REGISTRY_URI`` environment variables that ``set_tracking_uri`` writes, is put back
+    exactly afterwards, so nothing leaks into later runs of the same process.
+    """
+    from mlflow.tracking._model_registry import utils as registry_utils
+    from mlflow.tracking._tracking_service import utils as tracking_utils
+
+    saved_tracking = tracking_utils._tracking_uri
+    saved_registry = registry_utils._registry_uri
+    saved_env = {k: os.environ.get(k) for k in ("MLFLOW_TRACKING_URI", "MLFLOW_REGISTRY_URI")}
+    mlflow.set_tracking_uri(uri)
+    mlflow.set_registry_uri(uri)
+    try:
+        yield
+    finally:
+        mlflow.set_tracking_uri(saved_tracking)
+        registry_utils._registry_uri = saved_registry
+        for key, value in saved_env.items():
+            if value is None:
+                os.environ.pop(key, None)
+            else:
+                os.environ[key] = value
