@@ -65,8 +65,7 @@ def check_nside(nside, name: str = "nside") -> int:
     """Return ``nside`` as an int, or raise ValueError unless it is a power of two."""
     if not isinstance(nside, int | np.integer) or not hp.isnsideok(int(nside), nest=True):
         raise ValueError(
-            f"{name} must be a positive power of two (HEALPix), got {nside!r}; "
-            "e.g. 64, 128, 256"
+            f"{name} must be a positive power of two (HEALPix), got {nside!r}; e.g. 64, 128, 256"
         )
     return int(nside)
 
@@ -193,12 +192,13 @@ def synfast_tqu(cls, nside: int, lmax: int | None = None, seed=None, pixwin: boo
     if not isinstance(lmax, int | np.integer) or not 2 <= lmax <= nl - 1:
         raise ValueError(f"lmax must be an integer in [2, {nl - 1}] (the cls length), got {lmax!r}")
     legacy_seed = int(np.random.SeedSequence(seed).generate_state(1)[0])
-    state = np.random.get_state()
+    # healpy draws from numpy's global legacy generator and takes no Generator.
+    state = np.random.get_state()  # noqa: NPY002
     try:
-        np.random.seed(legacy_seed)
+        np.random.seed(legacy_seed)  # noqa: NPY002
         maps = hp.synfast(list(arr), nside, lmax=int(lmax), new=True, pixwin=pixwin, pol=True)
     finally:
-        np.random.set_state(state)
+        np.random.set_state(state)  # noqa: NPY002
     return np.asarray(maps, dtype=float)
 
 
