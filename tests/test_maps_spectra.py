@@ -171,8 +171,7 @@ def test_windowed_spectrum_matches_the_mode_coupled_expectation(setup):
     assert p > P_MIN
     # The window correction itself (deterministic): where C is smooth the expectation is C
     # up to the coupling bias, which is second order in the kernel width (~ l_f) and so
-    # below (l_f / l)^2 ~ 5% from the third bin on (l > 2.5 l_f); 3% holds for this
-    # spectrum, whose constant floor dilutes the curvature. Without the mean(w^2)
-    # division the ratio would be 0.14.
+    # of order (l_f / l)^2 < 1.5% from the third bin on (l > 8 l_f); 3% allows twice that.
+    # Without the mean(w^2) division the ratio would be 0.14.
     smooth = np.bincount(idx[idx >= 0], weights=spec[idx >= 0], minlength=len(counts)) / counts
     np.testing.assert_allclose(expected[2:], smooth[2:], rtol=0.03)
