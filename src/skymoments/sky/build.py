@@ -1,0 +1,160 @@
+"""Build a Scenario (and its parts) from a config node.
+
+Expected shape (``conf/`` follows it)::
+
+    patch: {npix: 64, pixel_arcmin: 3.0}
+    sky:
+      cmb: {H0: 67.5, ombh2: 0.022, omch2: 0.122, As: 2.0e-9, ns: 0.965, tau: 0.06, lmax: 5000}
+      foreground: {name: filaments, amplitude_uk: 3.0, ...model-specific keys}
+      beam_fwhm_arcmin: 0.0
+    prior:
+      r: {dist: uniform, low: 0.0, high: 0.2}
+      a_lens: {dist: fixed, value: 1.0}
+      a_fg: {dist: loguniform, low: 0.5, high: 2.0}
+      noise_uk_arcmin: {dist: fixed, value: 0.0}
+
+Any dict-like works: an omegaconf ``DictConfig`` (resolved here) or plain dicts.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Mapping
+
+from skymoments.maps.geometry import FlatPatch
+from skymoments.sky.cmb import CMBCosmology, cmb_spectra
+from skymoments.sky.foregrounds import FOREGROUNDS, make_foreground
+from skymoments.sky.priors import PRIOR_DISTS, prior_from_config
+from skymoments.sky.scenario import PARAM_NAMES, Scenario
+
+__all__ = [
+    "FOREGROUNDS",
+    "FOREGROUND_NAMES",
+    "PARAM_NAMES",
+    "PRIOR_DISTS",
+    "foreground_from_config",
+    "patch_from_config",
+    "priors_from_config",
+    "scenario_from_config",
+]
+
+FOREGROUND_NAMES: tuple[str, ...] = tuple(sorted(FOREGROUNDS))
+
+
+def _plain(node):
+    """A plain (resolved) Python container from an omegaconf node or a mapping."""
+    try:
+        from omegaconf import OmegaConf
+
+        if OmegaConf.is_config(node):
+            return OmegaConf.to_container(node, resolve=True)
+    except ImportError:  # pragma: no cover - omegaconf is a dependency
+        pass
+    if isinstance(node, Mapping):
+        return {k: _plain(v) for k, v in node.items()}
+    if isinstance(node, list | tuple):
+        return [_plain(v) for v in node]
+    return node
+
+
+def _section(cfg: dict, key: str, where: str = "") -> dict:
+    if not isinstance(cfg, Mapping) or key not in cfg or cfg[key] is None:
+        raise ValueError(f"the config has no '{where}{key}' section; see sky.build for its shape")
+    node = cfg[key]
+    if not isinstance(node, Mapping):
+        raise ValueError(f"'{where}{key}' must be a mapping, got {type(node).__name__}")
+    return dict(node)
+
+
+def patch_from_config(node) -> FlatPatch:
+    """A FlatPatch from ``{npix, pixel_arcmin}``."""
+    data = _plain(node)
+    if not isinstance(data, Mapping) or "npix" not in data or "pixel_arcmin" not in data:
+        raise ValueError(f"patch needs npix and pixel_arcmin, got {data!r}")
+    npix = data["npix"]
+    if isinstance(npix, float) and npix.is_integer():
+        npix = int(npix)
+    return FlatPatch(npix, float(data["pixel_arcmin"]))
+
+
+def foreground_from_config(node):
+    """A foreground from ``{name: ..., **model keywords}`` (e.g. ``cfg.sky.foreground``).
+
+    Raises
+    ------
+    ValueError
+        Unknown name (listing the known ones) or keyword, or an invalid value; the
+        message names ``sky.foreground``.
+    """
+    data = _plain(node)
+    if not isinstance(data, Mapping):
+        raise ValueError(f"sky.foreground must be a mapping with a 'name', got {data!r}")
+    data = dict(data)
+    name = data.pop("name", None)
+    if name is None:
+        raise ValueError(
+            f"sky.foreground needs a name; choose one of: {', '.join(FOREGROUND_NAMES)}"
+        )
+    if "length_arcmin" in data and isinstance(data["length_arcmin"], list):
+        data["length_arcmin"] = tuple(data["length_arcmin"])
+    try:
+        return make_foreground(name, **data)
+    except ValueError as err:
+        raise ValueError(f"sky.foreground: {err}") from None
+
+
+def priors_from_config(node) -> dict:
+    """The four priors from the ``prior`` section, keyed by :data:`PARAM_NAMES`."""
+    data = _plain(node)
+    if not isinstance(data, Mapping):
+        raise ValueError(f"prior must be a mapping of {', '.join(PARAM_NAMES)}, got {data!r}")
+    missing = [k for k in PARAM_NAMES if k not in data]
+    if missing:
+        raise ValueError(
+            f"prior is missing {', '.join(missing)}; every scenario needs all of "
+            f"{', '.join(PARAM_NAMES)}"
+        )
+    extra = sorted(set(data) - set(PARAM_NAMES))
+    if extra:
+        raise ValueError(
+            f"prior.{extra[0]} is not a scenario parameter; known: {', '.join(PARAM_NAMES)}"
+        )
+    out = {}
+    for key in PARAM_NAMES:
+        try:
+            out[key] = prior_from_config(data[key])
+        except ValueError as err:
+            raise ValueError(f"prior.{key}: {err}") from None
+    return out
+
+
+def scenario_from_config(
+    cfg, foreground=None, cmb=None, cache_dir: str | os.PathLike | None = None
+) -> Scenario:
+    """Build the Scenario a config describes.
+
+    Parameters
+    ----------
+    cfg : mapping or omegaconf.DictConfig
+        With ``patch``, ``sky`` and ``prior`` sections (module docstring).
+    foreground : object, optional
+        A foreground (e.g. an ImageBank of synthesized images) that replaces the
+        configured ``sky.foreground``.
+    cmb : CMBSpectra, optional
+        Spectra to use instead of computing (or loading) those of ``sky.cmb``; then
+        ``sky.cmb`` is not read.
+    cache_dir : path-like, optional
+        CMB spectra cache folder (default ``$SKYMOMENTS_CACHE`` or ``~/.cache/skymoments``).
+    """
+    data = _plain(cfg)
+    patch = patch_from_config(_section(data, "patch"))
+    sky = _section(data, "sky")
+    if cmb is None:
+        cosmo = CMBCosmology.from_mapping(_section(sky, "cmb", "sky."))
+        cmb = cmb_spectra(cosmo, cache_dir=cache_dir)
+    if foreground is None:
+        foreground = foreground_from_config(_section(sky, "foreground", "sky."))
+    beam = sky.get("beam_fwhm_arcmin", 0.0)
+    beam = 0.0 if beam is None else float(beam)
+    priors = priors_from_config(_section(data, "prior"))
+    return Scenario(patch, cmb, foreground, priors, beam_fwhm_arcmin=beam)

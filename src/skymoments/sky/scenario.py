@@ -1,0 +1,339 @@
+"""A scenario: the joint distribution of (CMB signal, foreground, noise, parameters, data).
+
+Generative model, per map i (all maps independent):
+
+    r_i, A_lens,i, a_fg,i, w_i ~ priors
+    (E, B)_i  ~ Gaussian with C^EE = C^EE,lens + r_i C^EE,tens,  C^BB = A_lens,i C^BB,lens
+                + r_i C^BB,tens                                    (the target, before beam)
+    (Q, U)_i  = the same signal as Q/U
+    F_i       = a_fg,i * foreground.draw()                       (Q/U, microkelvin)
+    N_i       ~ white noise of w_i uK-arcmin per Q and U
+    data_i    = beam * (signal_i + F_i) + N_i
+
+The per-map spectrum needs no grouping: the realization is one unit white-noise field per
+component, filtered by ``sqrt((A_lens C^lens + r C^tens) / Omega_pix)`` with that map's own
+amplitudes (sky.gaussian), which is exactly a Gaussian field of the summed spectrum.
+
+Power-spectrum helpers used by the Wiener and exact baselines are all referred to the
+sky, i.e. to beam-deconvolved data: noise power is ``w^2 arcmin^2 / B_ell^2``.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from skymoments.maps.eb import eb_to_qu
+from skymoments.maps.geometry import FlatPatch
+from skymoments.sky.cmb import CMBSpectra
+from skymoments.sky.foregrounds import Foreground
+from skymoments.sky.gaussian import gaussian_eb, interp_cl_2d
+from skymoments.sky.noise import apply_beam, beam_transfer, white_noise_qu
+from skymoments.sky.noise import noise_power_2d as _white_power_2d
+from skymoments.sky.priors import Fixed, Prior, prior_from_config
+from skymoments.sky.seeds import as_generator
+
+__all__ = ["PARAM_NAMES", "Scenario", "SkyDraw"]
+
+PARAM_NAMES: tuple[str, ...] = ("r", "a_lens", "a_fg", "noise_uk_arcmin")
+
+# Beam transfer values below this are treated as this when deconvolving noise power, so
+# that a wide beam gives a huge but finite noise power instead of inf.
+_MIN_BEAM = 1e-30
+
+
+@dataclass(frozen=True)
+class SkyDraw:
+    """One batch of training or validation pairs.
+
+    Attributes
+    ----------
+    data_qu : ndarray or torch.Tensor, shape (n, 2, npix, npix), microkelvin
+        Observed Q/U: beam * (signal + foreground) + noise.
+    target_eb : ndarray or torch.Tensor, shape (n, 2, npix, npix), microkelvin
+        The CMB signal's E/B maps before the beam.
+    params : ndarray or torch.Tensor, shape (n, 4)
+        Drawn parameters, columns in ``param_names`` order.
+    param_names : tuple of str
+    """
+
+    data_qu: object
+    target_eb: object
+    params: object
+    param_names: tuple[str, ...] = PARAM_NAMES
+
+
+class Scenario:
+    """CMB signal + foreground + noise on a flat patch, with priors on four amplitudes.
+
+    Parameters
+    ----------
+    patch : FlatPatch
+    cmb : CMBSpectra
+        Lensed and r = 1 tensor spectra (sky.cmb.cmb_spectra).
+    foreground : Foreground
+        Any object with ``draw(patch, rng, n)`` and ``name`` (sky.foregrounds).
+    priors : dict
+        Priors (or config dicts) for every name in :data:`PARAM_NAMES`; all supports
+        must be >= 0 (amplitudes and a noise level).
+    beam_fwhm_arcmin : float
+        Gaussian beam applied to signal and foreground; 0 for none.
+    """
+
+    def __init__(
+        self,
+        patch: FlatPatch,
+        cmb: CMBSpectra,
+        foreground: Foreground,
+        priors: dict,
+        beam_fwhm_arcmin: float = 0.0,
+    ) -> None:
+        if not isinstance(patch, FlatPatch):
+            raise ValueError(f"patch must be a FlatPatch, got {type(patch).__name__}")
+        if not isinstance(cmb, CMBSpectra):
+            raise ValueError(
+                f"cmb must be a CMBSpectra (sky.cmb.cmb_spectra), got {type(cmb).__name__}"
+            )
+        if not callable(getattr(foreground, "draw", None)):
+            raise ValueError(
+                "foreground must have a draw(patch, rng, n) method, "
+                f"got {type(foreground).__name__}"
+            )
+        missing = [k for k in PARAM_NAMES if k not in priors]
+        extra = sorted(set(priors) - set(PARAM_NAMES))
+        if missing or extra:
+            raise ValueError(
+                f"priors must have exactly the keys {', '.join(PARAM_NAMES)}; "
+                + (f"missing: {', '.join(missing)}" if missing else "")
+                + ("; " if missing and extra else "")
+                + (f"unknown: {', '.join(extra)}" if extra else "")
+            )
+        self.priors: dict[str, Prior] = {}
+        for key in PARAM_NAMES:
+            try:
+                prior = prior_from_config(priors[key])
+            except ValueError as err:
+                raise ValueError(f"prior.{key}: {err}") from None
+            if prior.support[0] < 0:
+                raise ValueError(
+                    f"prior.{key} reaches {prior.support[0]} < 0; {key} is an amplitude or a "
+                    "noise level and must stay >= 0 (raise its low bound)"
+                )
+            self.priors[key] = prior
+        beam = float(beam_fwhm_arcmin)
+        if not np.isfinite(beam) or beam < 0:
+            raise ValueError(f"beam_fwhm_arcmin must be >= 0 arcmin, got {beam_fwhm_arcmin!r}")
+        self.patch = patch
+        self.cmb = cmb
+        self.foreground = foreground
+        self.beam_fwhm_arcmin = beam
+        self.param_names = PARAM_NAMES
+        self._ee_lens = interp_cl_2d(cmb.ell, cmb.ee_lensed, patch)
+        self._bb_lens = interp_cl_2d(cmb.ell, cmb.bb_lensed, patch)
+        self._ee_tens = interp_cl_2d(cmb.ell, cmb.ee_tensor, patch)
+        self._bb_tens = interp_cl_2d(cmb.ell, cmb.bb_tensor, patch)
+        self.beam_2d = beam_transfer(patch, beam)
+        self.beam_2d.setflags(write=False)
+
+    def __repr__(self) -> str:
+        pri = ", ".join(f"{k}={v!r}" for k, v in self.priors.items())
+        return (
+            f"Scenario({self.patch!r}, foreground={self.foreground!r}, "
+            f"beam_fwhm_arcmin={self.beam_fwhm_arcmin}, {pri})"
+        )
+
+    # ------------------------------------------------------------------ spectra
+    def signal_power_2d(self, r, a_lens) -> tuple[np.ndarray, np.ndarray]:
+        """CMB EE and BB power on the 2-D multipole grid for given amplitudes.
+
+        Parameters
+        ----------
+        r, a_lens : float or ndarray, shape (n,)
+
+        Returns
+        -------
+        ee2d, bb2d : ndarray, shape (npix, npix) or (n, npix, npix), uK^2
+        """
+        r = np.asarray(r, dtype=float)
+        a_lens = np.asarray(a_lens, dtype=float)
+        for name, v in (("r", r), ("a_lens", a_lens)):
+            if v.ndim > 1 or not np.all(np.isfinite(v)) or np.any(v < 0):
+                raise ValueError(f"{name} must be finite, >= 0, a number or a 1-D array")
+        shape = np.broadcast_shapes(r.shape, a_lens.shape)
+        r3 = np.broadcast_to(r, shape)[..., None, None]
+        a3 = np.broadcast_to(a_lens, shape)[..., None, None]
+        ee = self._ee_lens + r3 * self._ee_tens
+        bb = a3 * self._bb_lens + r3 * self._bb_tens
+        return ee, bb
+
+    def mean_signal_power_2d(self) -> tuple[np.ndarray, np.ndarray]:
+        """Prior average of the CMB EE and BB power, each (npix, npix), uK^2.
+
+        The spectrum is linear in r and A_lens, so its prior average is the spectrum at
+        the prior means, exactly.
+        """
+        return self.signal_power_2d(self.priors["r"].mean(), self.priors["a_lens"].mean())
+
+    def prior_mean(self, name: str) -> float:
+        """Prior mean of one parameter."""
+        return self._prior(name).mean()
+
+    def prior_second_moment(self, name: str) -> float:
+        """Prior ``E[x^2]`` of one parameter (foreground power scales with ``a_fg^2``)."""
+        return self._prior(name).second_moment()
+
+    def _prior(self, name: str) -> Prior:
+        if name not in self.priors:
+            raise ValueError(f"unknown parameter {name!r}; known: {', '.join(PARAM_NAMES)}")
+        return self.priors[name]
+
+    def noise_power_2d(self, uk_arcmin) -> np.ndarray:
+        """White-noise power referred to the sky (divided by B_ell^2), uK^2.
+
+        Parameters
+        ----------
+        uk_arcmin : float or ndarray, shape (n,)
+
+        Returns
+        -------
+        ndarray, shape (npix, npix) or (n, npix, npix)
+            The same for Q, U, E and B.
+        """
+        return _white_power_2d(self.patch, uk_arcmin) / np.maximum(self.beam_2d, _MIN_BEAM) ** 2
+
+    def mean_noise_power_2d(self) -> np.ndarray:
+        """Prior average of the noise power (uses ``E[w^2]``), shape (npix, npix), uK^2."""
+        w2 = self.prior_second_moment("noise_uk_arcmin")
+        return self.noise_power_2d(np.sqrt(w2))
+
+    def foreground_power_2d(self) -> tuple[np.ndarray, np.ndarray]:
+        """Foreground EE and BB power at unit amplitude, when the model knows it analytically.
+
+        Raises
+        ------
+        ValueError
+            For foregrounds without a ``power_2d`` method (estimate it from maps instead).
+        """
+        power = getattr(self.foreground, "power_2d", None)
+        if power is None:
+            raise ValueError(
+                f"foreground {getattr(self.foreground, 'name', '?')!r} has no analytic spectrum; "
+                "estimate it from maps (calibration.wiener)"
+            )
+        return power(self.patch)
+
+    def is_gaussian_fixed(self) -> bool:
+        """True when every prior is fixed and the foreground is Gaussian.
+
+        Then signal, foreground and noise are independent stationary Gaussian fields, and
+        the Wiener filter is the exact posterior (REFERENCES.md, "Wiener filter").
+        """
+        fixed = all(isinstance(p, Fixed) for p in self.priors.values())
+        return fixed and bool(getattr(self.foreground, "is_gaussian", False))
+
+    def true_noise_power_2d(self) -> tuple[np.ndarray, np.ndarray]:
+        """EE and BB power of everything but the CMB (foreground + noise), referred to the sky.
+
+        ``a_fg^2 C^fg + w^2 arcmin^2 / B^2`` at the fixed prior values; meaningful when
+        :meth:`is_gaussian_fixed`.
+        """
+        if not self.is_gaussian_fixed():
+            raise ValueError(
+                "true_noise_power_2d needs fixed priors and a Gaussian foreground "
+                "(is_gaussian_fixed() is False)"
+            )
+        fg_ee, fg_bb = self.foreground_power_2d()
+        a2 = self.prior_second_moment("a_fg")
+        noise = self.mean_noise_power_2d()
+        return a2 * fg_ee + noise, a2 * fg_bb + noise
+
+    # ------------------------------------------------------------------ draws
+    def sample_params(self, rng, n: int) -> np.ndarray:
+        """Parameters from the priors, shape (n, 4), columns :data:`PARAM_NAMES`."""
+        rng = as_generator(rng)
+        children = rng.spawn(len(PARAM_NAMES))
+        return np.stack(
+            [self.priors[k].sample(c, n) for k, c in zip(PARAM_NAMES, children, strict=True)],
+            axis=1,
+        )
+
+    def draw_components(self, rng, n: int, params: np.ndarray | None = None) -> dict:
+        """Draw ``n`` maps with every component kept.
+
+        Parameters
+        ----------
+        rng : numpy.random.Generator or int
+            Parameters, signal, foreground and noise use independent child streams of it,
+            so e.g. the CMB realization for a seed does not depend on the foreground model.
+        n : int
+        params : ndarray, shape (n, 4), optional
+            Use these parameters instead of drawing them.
+
+        Returns
+        -------
+        dict
+            ``signal_eb``, ``signal_qu``, ``foreground_qu``, ``noise_qu``, ``data_qu``
+            (each (n, 2, npix, npix), microkelvin) and ``params`` (n, 4).
+        """
+        if isinstance(n, bool) or not isinstance(n, int | np.integer) or n < 1:
+            raise ValueError(f"n (number of maps) must be a positive integer, got {n!r}")
+        n = int(n)
+        rng = as_generator(rng)
+        r_par, r_cmb, r_fg, r_noise = rng.spawn(4)
+        if params is None:
+            params = self.sample_params(r_par, n)
+        else:
+            params = np.array(params, dtype=float)
+            if params.shape != (n, len(PARAM_NAMES)):
+                raise ValueError(
+                    f"params has shape {params.shape}, expected ({n}, {len(PARAM_NAMES)}) "
+                    f"with columns {', '.join(PARAM_NAMES)}"
+                )
+            if not np.all(np.isfinite(params)) or np.any(params < 0):
+                raise ValueError("params must be finite and >= 0")
+        r, a_lens, a_fg, noise = params.T
+        ee, bb = self.signal_power_2d(r, a_lens)
+        signal_eb = gaussian_eb(self.patch, ee, bb, r_cmb, n)
+        signal_qu = eb_to_qu(signal_eb, self.patch)
+        fg = np.asarray(self.foreground.draw(self.patch, r_fg, n), dtype=float)
+        if fg.shape != (n, 2, self.patch.npix, self.patch.npix):
+            raise ValueError(
+                f"foreground {getattr(self.foreground, 'name', '?')!r} returned shape {fg.shape}, "
+                f"expected {(n, 2, self.patch.npix, self.patch.npix)}"
+            )
+        foreground_qu = a_fg[:, None, None, None] * fg
+        noise_qu = white_noise_qu(self.patch, noise, r_noise, n)
+        sky = signal_qu + foreground_qu
+        if self.beam_fwhm_arcmin > 0:
+            sky = apply_beam(sky, self.patch, self.beam_fwhm_arcmin)
+        data_qu = sky + noise_qu
+        return {
+            "signal_eb": signal_eb,
+            "signal_qu": signal_qu,
+            "foreground_qu": foreground_qu,
+            "noise_qu": noise_qu,
+            "data_qu": data_qu,
+            "params": params,
+        }
+
+    def draw(self, rng, n: int, as_torch: bool = False) -> SkyDraw:
+        """Draw ``n`` (data, target, params) triples; see :meth:`draw_components`.
+
+        Parameters
+        ----------
+        rng : numpy.random.Generator or int
+        n : int
+        as_torch : bool
+            Return float32 torch tensors instead of float64 arrays.
+        """
+        parts = self.draw_components(rng, n)
+        data, target, params = parts["data_qu"], parts["signal_eb"], parts["params"]
+        if as_torch:
+            import torch
+
+            data, target, params = (
+                torch.from_numpy(np.ascontiguousarray(x, dtype=np.float32))
+                for x in (data, target, params)
+            )
+        return SkyDraw(data, target, params, PARAM_NAMES)
