@@ -129,32 +129,34 @@ def coverage_plot(
 ) -> Figure:
     """Empirical against expected coverage of Gaussian central intervals, E and B.
 
+    Left: the curve with the diagonal. Right: empirical minus expected, where departures
+    of a percent are visible.
+
     Parameters
     ----------
     levels : ndarray, shape (L,)
     curves : dict with ``"E"``, ``"B"`` -> ndarray, shape (L,)
     baseline_curves : same, optional (the Wiener baseline)
     """
-    fig, ((ax,),) = _subplots(1, 1, (3.6, 3.4))
+    fig, ((ax, dax),) = _subplots(1, 2, (7.2, 3.4))
     ax.plot([0, 1], [0, 1], "k:", lw=1, label="ideal")
+    dax.axhline(0.0, color="k", ls=":", lw=1)
     for c in COMPONENTS:
         ax.plot(levels, curves[c], "o-", ms=3, color=_COLOURS[c], label=f"network {c}")
+        dax.plot(levels, curves[c] - levels, "o-", ms=3, color=_COLOURS[c], label=f"network {c}")
         if baseline_curves is not None:
-            ax.plot(
-                levels,
-                baseline_curves[c],
-                "s--",
-                ms=3,
-                color=_COLOURS[c],
-                alpha=0.6,
-                label=f"Wiener {c}",
-            )
-    ax.set_xlabel("credibility level (Gaussian interval)")
+            for a, y in ((ax, baseline_curves[c]), (dax, baseline_curves[c] - levels)):
+                a.plot(levels, y, "s--", ms=3, color=_COLOURS[c], alpha=0.6, label=f"Wiener {c}")
+    ax.set_xlabel("credibility level p (Gaussian interval)")
     ax.set_ylabel("empirical coverage")
     ax.set_xlim(0, 1)
     ax.set_ylim(0, 1)
     ax.legend(fontsize=7)
-    ax.set_title("below diagonal = over-confident", fontsize=8)
+    dax.set_xlabel("credibility level p (Gaussian interval)")
+    dax.set_ylabel("empirical - expected coverage")
+    dax.set_xlim(0, 1)
+    dax.legend(fontsize=7)
+    fig.suptitle("mean +- norm.ppf((1+p)/2) std; below the diagonal = over-confident", fontsize=8)
     fig.tight_layout()
     return fig
 
@@ -191,10 +193,10 @@ def spectra_panel(
         col = _COLOURS[c]
         axes[0].plot(ell, arrays[f"r_ell_{c}"], "-", color=col, label=f"network {c}")
         axes[1].plot(ell, arrays[f"T_ell_{c}"], "-", color=col, label=f"network {c}")
-        axes[2].loglog(ell, arrays[f"cl_signal_{c}"], "-", color=col, label=f"signal {c}")
-        axes[2].loglog(ell, arrays[f"cl_residual_{c}"], "--", color=col, label=f"residual {c}")
+        axes[2].semilogy(ell, arrays[f"cl_signal_{c}"], "-", color=col, label=f"signal {c}")
+        axes[2].semilogy(ell, arrays[f"cl_residual_{c}"], "--", color=col, label=f"residual {c}")
         if f"cl_residual_data_{c}" in arrays:
-            axes[2].loglog(
+            axes[2].semilogy(
                 ell, arrays[f"cl_residual_data_{c}"], ":", color=col, label=f"data - truth {c}"
             )
         if baseline is not None:

@@ -79,7 +79,8 @@ def stratified_calibration(
         ``eval/std_fgbin{k}_C`` (mean predicted std), ``eval/abs_mean_fgbin{k}_C`` and
         ``eval/abs_truth_fgbin{k}_C``.
     arrays : dict
-        ``fg_edges`` (n_bins + 1,) and ``fg_centres`` (n_bins,) in uK; per component
+        ``fg_edges`` (n_bins + 1,) and ``fg_centres`` (n_bins,) in uK, ``fg_counts``
+        (n_bins,) pixels per bin; per component
         ``z_std_fg_C``, ``std_fg_C``, ``abs_mean_fg_C``, ``abs_truth_fg_C`` (n_bins,).
     """
     t, m, s = check_posterior_inputs(truth_eb, mean_eb, std_eb)
@@ -99,6 +100,7 @@ def stratified_calibration(
     arrays: dict[str, np.ndarray] = {
         "fg_edges": edges,
         "fg_centres": np.array([np.median(inten[idx == k]) for k in range(n_bins)]),
+        "fg_counts": np.bincount(idx.ravel(), minlength=n_bins),
     }
     for i, c in enumerate(COMPONENTS):
         rows = {"z_std_fg": [], "std_fg": [], "abs_mean_fg": [], "abs_truth_fg": []}
