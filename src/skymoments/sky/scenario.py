@@ -24,7 +24,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from skymoments.maps.eb import eb_to_qu
+from skymoments.maps.eb import eb_to_qu, qu_to_eb
 from skymoments.maps.geometry import FlatPatch
 from skymoments.sky.cmb import CMBSpectra
 from skymoments.sky.foregrounds import Foreground
@@ -294,8 +294,11 @@ class Scenario:
                 raise ValueError("params must be finite and >= 0")
         r, a_lens, a_fg, noise = params.T
         ee, bb = self.signal_power_2d(r, a_lens)
-        signal_eb = gaussian_eb(self.patch, ee, bb, r_cmb, n)
-        signal_qu = eb_to_qu(signal_eb, self.patch)
+        signal_qu = eb_to_qu(gaussian_eb(self.patch, ee, bb, r_cmb, n), self.patch)
+        # The target is the E/B content of the Q/U signal itself, so that it is exactly
+        # recoverable from noise-free Q/U even where a grid's Q/U <-> E/B round trip is
+        # not the identity (the self-conjugate corner mode of an even-sized grid).
+        signal_eb = qu_to_eb(signal_qu, self.patch)
         fg = np.asarray(self.foreground.draw(self.patch, r_fg, n), dtype=float)
         if fg.shape != (n, 2, self.patch.npix, self.patch.npix):
             raise ValueError(
