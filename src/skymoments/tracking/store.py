@@ -190,6 +190,20 @@ def probe_server(uri: str, timeout: float = _PROBE_TIMEOUT_S) -> None:
         raise TrackingUnavailableError(unavailable_message(uri, f"{reason}")) from exc
 
 
+def _schema_present(db: Path) -> bool:
+    """True when MLflow's schema is in ``db`` (its migration table has a version)."""
+    if not db.exists() or db.stat().st_size == 0:
+        return False
+    try:
+        with contextlib.closing(
+            sqlite3.connect(f"{db.absolute().as_uri()}?mode=ro", uri=True)
+        ) as con:
+            row = con.execute("SELECT version_num FROM alembic_version").fetchone()
+    except sqlite3.Error:
+        return False
+    return row is not None and bool(row[0])
+
+
 def prepare_store(settings: TrackingSettings) -> None:
     """Make the store usable, once per process and URI.
 
@@ -207,15 +221,17 @@ def prepare_store(settings: TrackingSettings) -> None:
         db = sqlite_path(uri)
         if db is not None:
             with _file_lock(db.with_name(db.name + ".lock")):
-                fresh = not db.exists() or db.stat().st_size == 0
-                if fresh:
-                    # WAL is a property of the database file: set once, it stays.
-                    with contextlib.closing(sqlite3.connect(db)) as con:
-                        con.execute("PRAGMA journal_mode=WAL")
-                client = MlflowClient(uri, registry_uri=uri)
-                # Touch both stores: MLflow creates or migrates the tables on first access.
-                client.search_experiments(max_results=1)
-                client.search_registered_models(max_results=1)
+                if not _schema_present(db):
+                    if not db.exists() or db.stat().st_size == 0:
+                        # WAL is a property of the database file: set once, it stays.
+                        with contextlib.closing(sqlite3.connect(db)) as con:
+                            con.execute("PRAGMA journal_mode=WAL")
+                    client = MlflowClient(uri, registry_uri=uri)
+                    # Touch both stores: MLflow creates the tables on first access.
+                    client.search_experiments(max_results=1)
+                    client.search_registered_models(max_results=1)
+            # A store whose schema exists needs no lock: opening it only reads, so processes
+            # that arrive later open it side by side instead of one after the other.
     with _PREPARED_LOCK:
         _PREPARED.add(uri)
 
