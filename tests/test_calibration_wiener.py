@@ -75,16 +75,24 @@ def simulate(rng, patch: FlatPatch, n: int):
     return qu_to_eb(signal_qu, patch), signal_qu + fg_qu + noise_qu, fg_qu
 
 
-def exact_filter(patch: FlatPatch) -> WienerFilter:
+def exact_filter(patch: FlatPatch, beam: np.ndarray | None = None) -> WienerFilter:
     """The filter with the real-map spectra of the fields `simulate` makes.
 
     realmap_eb_gain: source "eb" for fields made by eb_to_qu, "qu" for white Q/U noise.
+    With a beam, the white noise is referred to the sky (divided by B^2).
     """
     s_ee, s_bb, f_ee, f_bb = spectra(patch)
     g_eb, g_qu = realmap_eb_gain(patch, "eb"), realmap_eb_gain(patch, "qu")
     white = white_noise_power_2d(patch, sigma_pix_uk=SIGMA_PIX)
+    if beam is not None:
+        white = white / beam**2
     return WienerFilter(
-        patch, g_eb * s_ee, g_eb * s_bb, g_eb * f_ee + g_qu * white, g_eb * f_bb + g_qu * white
+        patch,
+        g_eb * s_ee,
+        g_eb * s_bb,
+        g_eb * f_ee + g_qu * white,
+        g_eb * f_bb + g_qu * white,
+        beam_2d=beam,
     )
 
 
@@ -98,30 +106,41 @@ def linear_map(fn, dim_shape) -> np.ndarray:
 # --- dense Gaussian conditioning -----------------------------------------------------
 
 
-def test_per_mode_filter_equals_dense_gaussian_posterior():
+@pytest.mark.parametrize("beam_fwhm_pix", [0.0, 1.5])
+def test_per_mode_filter_equals_dense_gaussian_posterior(beam_fwhm_pix):
     """Mean and variance equal (S^-1 + N^-1)^-1 N^-1 d and (S^-1 + N^-1)^-1 on 8x8.
 
     Reference: standard Gaussian conditioning (Elsner & Wandelt 2013, arXiv:1210.4931),
     computed with numpy.linalg on explicitly constructed pixel covariances; an even patch,
-    so the Nyquist row/column and the zero mode are exercised. Tolerance: float64
-    round-off of the inversions (condition numbers here are below 1e6).
+    so the Nyquist row/column and the zero mode are exercised. With a beam the data are
+    B (s + f) + n and d is the beam-deconvolved real E/B data. Tolerance: float64
+    round-off of the inversions (condition numbers here are below 1e8).
     """
     patch = FlatPatch(8, 30.0)
     shape = (2, 8, 8)
     s_ee, s_bb, f_ee, f_bb = spectra(patch)
+    sigma = beam_fwhm_pix * patch.pixel_rad / np.sqrt(8 * np.log(2))
+    beam = np.exp(-0.5 * patch.ell * (patch.ell + 1) * sigma**2)  # Gaussian beam B_ell
+
+    def smear(x, power):  # the beam (or its inverse) as a Fourier multiplier
+        return np.fft.ifft2(np.fft.fft2(x) * beam**power).real
 
     g_s = linear_map(lambda w: eb_to_qu(colour(w, s_ee, s_bb, patch), patch), shape)  # w -> sig QU
     g_f = linear_map(lambda w: eb_to_qu(colour(w, f_ee, f_bb, patch), patch), shape)  # w -> fg QU
     a = linear_map(lambda qu: qu_to_eb(qu, patch), shape)  # QU -> real EB maps
+    b = linear_map(lambda x: smear(x, 1), shape)
+    b_inv = linear_map(lambda x: smear(x, -1), shape)
     dim = a.shape[0]
-    cov_d = g_s @ g_s.T + g_f @ g_f.T + SIGMA_PIX**2 * np.eye(dim)  # data Q/U
+    sky_s, sky_f = b @ g_s, b @ g_f
+    cov_d = sky_s @ sky_s.T + sky_f @ sky_f.T + SIGMA_PIX**2 * np.eye(dim)  # data Q/U
     t_map = a @ g_s  # w -> truth
     cov_t = t_map @ t_map.T  # S: truth E/B covariance
-    cov_m = a @ (cov_d - g_s @ g_s.T) @ a.T  # N: contamination in real E/B
+    deconv = b_inv @ a  # Q/U data -> beam-deconvolved real E/B
+    cov_m = deconv @ (cov_d - sky_s @ sky_s.T) @ deconv.T  # N: contamination, sky units
 
     rng = np.random.default_rng(11)
     d = rng.standard_normal(dim) * 3.0  # any data vector: the posterior mean is linear
-    e = a @ d
+    e = deconv @ d
 
     # S and N are singular only on the zero mode (qu_to_eb removes it); restrict to its
     # orthogonal complement, where both are invertible.
@@ -136,13 +155,13 @@ def test_per_mode_filter_equals_dense_gaussian_posterior():
 
     # Second route, independent of the subspace argument: condition on the Q/U data
     # itself, mean = Cov(t, d) Cov(d)^-1 d, cov = S - Cov(t, d) Cov(d)^-1 Cov(d, t).
-    cross = t_map @ g_s.T
+    cross = t_map @ sky_s.T
     assert_allclose(dense_mean, cross @ np.linalg.solve(cov_d, d), rtol=1e-8, atol=1e-12)
     assert_allclose(
         dense_cov, cov_t - cross @ np.linalg.solve(cov_d, cross.T), rtol=1e-7, atol=1e-14
     )
 
-    wf = exact_filter(patch)
+    wf = exact_filter(patch, beam if beam_fwhm_pix else None)
     mean, std = wf.posterior(d.reshape(shape))
     scale = np.abs(dense_mean).max()
     assert_allclose(mean.ravel(), dense_mean, rtol=0, atol=1e-9 * scale)

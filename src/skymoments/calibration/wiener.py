@@ -114,15 +114,16 @@ def isotropic_power_2d(ell: np.ndarray, cl: np.ndarray, patch: FlatPatch) -> np.
     return out
 
 
-def _check_power(name: str, p: np.ndarray, patch: FlatPatch) -> np.ndarray:
+def _check_power(
+    name: str, p: np.ndarray, patch: FlatPatch, what: str = "a 2-D power array in uK^2, C_ell units"
+) -> np.ndarray:
     p = np.asarray(p, dtype=np.float64)
     if p.shape != patch.shape:
         raise ValueError(
-            f"{name} has shape {p.shape}, expected the patch's fft2 grid {patch.shape} "
-            "(a 2-D power array in uK^2, C_ell units)"
+            f"{name} has shape {p.shape}, expected the patch's fft2 grid {patch.shape} ({what})"
         )
     if not np.all(np.isfinite(p)) or np.any(p < 0):
-        raise ValueError(f"{name} must be finite and >= 0 (a power spectrum in uK^2)")
+        raise ValueError(f"{name} must be finite and >= 0 ({what})")
     # A real field's power is even under l -> -l (fft2 index -k mod npix).
     flipped = np.roll(p[::-1, ::-1], 1, axis=(0, 1))
     if not np.allclose(p, flipped, rtol=1e-10, atol=1e-300):
@@ -142,19 +143,29 @@ class WienerFilter:
     signal_ee_2d, signal_bb_2d : ndarray, shape (npix, npix), uK^2
         2-D power of the signal E and B on the fft2 grid (C_ell convention).
     noise_ee_2d, noise_bb_2d : ndarray, shape (npix, npix), uK^2
-        2-D power of everything else in the data (foreground + instrumental noise).
+        2-D power of everything else in the data (foreground + instrumental noise),
+        referred to the sky: with a beam, the instrumental part is ``N_white / B^2``.
+    beam_2d : ndarray, shape (npix, npix), optional
+        Beam transfer function ``B`` (fft2 layout, 1 at ``l = 0``) when the data are
+        ``B * (signal + foreground) + noise``. The data are deconvolved per mode before
+        the weight is applied; ``S / (S + N_fg + N_white / B^2) / B`` equals
+        ``B S / (B^2 (S + N_fg) + N_white)``, which is finite as ``B -> 0``; modes with
+        ``B = 0`` get weight 0.
 
     Attributes
     ----------
     weight : ndarray, shape (2, npix, npix)
-        ``S / (S + N)`` per mode, E then B (0 where ``S + N = 0``).
+        ``S / (S + N)`` per mode, E then B (0 where ``S + N = 0``): the transfer function
+        from the truth to the posterior mean.
+    data_weight : ndarray, shape (2, npix, npix)
+        What multiplies the data's modes: ``weight / B`` (``weight`` without a beam).
     mode_variance : ndarray, shape (2, npix, npix), uK^2
         Posterior variance per mode ``S N / (S + N)`` in C_ell units.
     pixel_std : ndarray, shape (2,), microkelvin
         Posterior std of every pixel of E and of B.
     """
 
-    def __init__(self, patch, signal_ee_2d, signal_bb_2d, noise_ee_2d, noise_bb_2d):
+    def __init__(self, patch, signal_ee_2d, signal_bb_2d, noise_ee_2d, noise_bb_2d, beam_2d=None):
         self.patch = patch
         s = np.stack(
             [
@@ -179,6 +190,12 @@ class WienerFilter:
             self.mode_variance = np.where(tot > 0, s * n / tot, 0.0)
         self.signal_2d = s
         self.noise_2d = n
+        if beam_2d is None:
+            self.data_weight = self.weight
+        else:
+            beam = _check_power("beam_2d", beam_2d, patch, "a beam transfer function B_ell")
+            with np.errstate(invalid="ignore", divide="ignore"):
+                self.data_weight = np.where(beam > 0, self.weight / beam, 0.0)
         # Parseval: pixel variance of a stationary field with per-mode power V (C_ell units)
         # is sum_k V_k / (npix^2 Omega_pix)  (fft2 normalization, DEVELOPERS.md).
         npix2 = patch.npix**2
@@ -198,7 +215,7 @@ class WienerFilter:
         """
         data_eb = np.asarray(data_eb, dtype=np.float64)
         self.patch.check_maps(data_eb, "data_eb")
-        mean = np.fft.ifft2(self.weight * np.fft.fft2(data_eb)).real
+        mean = np.fft.ifft2(self.data_weight * np.fft.fft2(data_eb)).real
         std = np.broadcast_to(self.pixel_std[:, None, None], mean.shape).copy()
         return mean, std
 
