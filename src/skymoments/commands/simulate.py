@@ -106,7 +106,7 @@ def print_summary(parts: dict[str, np.ndarray], patch, npz_path: Path, png_path:
         rms = np.sqrt(np.mean(parts[key] ** 2, axis=(0, 2, 3)))
         table.add_row(key, f"{rms[0]:.3g}", f"{rms[1]:.3g}")
     console.print(table)
-    ratios = Table(title="foreground / signal power", title_justify="left")
+    ratios = Table(title="foreground / signal power", title_justify="left", min_width=40)
     ratios.add_column("ell", justify="right")
     ratios.add_column("EE", justify="right")
     ratios.add_column("BB", justify="right")
