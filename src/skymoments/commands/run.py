@@ -1,0 +1,183 @@
+"""``skymoments run``: one tracked study — train both stages, evaluate calibration, log it all."""
+
+from __future__ import annotations
+
+import time
+from pathlib import Path
+
+import numpy as np
+from omegaconf import DictConfig, OmegaConf
+
+from skymoments.commands._entry import hydra_task
+from skymoments.config import validate
+
+# Metrics shown in the end-of-run summary table.
+SUMMARY_KEYS = (
+    "calib/z_mean_E", "calib/z_std_E", "calib/cov68_E", "calib/cov95_E",
+    "calib/z_mean_B", "calib/z_std_B", "calib/cov68_B", "calib/cov95_B",
+    "eval/mse_E", "eval/mse_B", "eval/mse_ratio_wiener_E", "eval/mse_ratio_wiener_B",
+    "eval/mse_ratio_exact_E", "eval/mse_ratio_exact_B",
+    "eval/var_ratio_exact_E", "eval/var_ratio_exact_B",
+)
+
+
+def job_dir() -> Path:
+    """The Hydra job's output folder (the current folder outside a Hydra app)."""
+    from hydra.core.hydra_config import HydraConfig
+
+    if HydraConfig.initialized():
+        return Path(HydraConfig.get().runtime.output_dir)
+    return Path.cwd()
+
+
+def training_image(cfg: DictConfig, patch) -> np.ndarray:
+    """The single foreground image training may use, shape (2, npix, npix), uK.
+
+    ``synthesis.image`` when given (a file); otherwise one draw of ``sky.foreground`` from
+    the dedicated ``training_image`` seed stream, never reused for validation.
+    """
+    if cfg.synthesis.get("image"):
+        from skymoments.synthesis.sources import load_training_image
+
+        return load_training_image(cfg, patch)
+    from skymoments.sky.build import foreground_from_config
+    from skymoments.sky.seeds import streams
+
+    rng = streams(int(cfg.seed), "training_image")["training_image"]
+    fg = foreground_from_config(cfg.sky.foreground)
+    return fg.draw(patch, rng, 1)[0]
+
+
+def training_foreground(cfg: DictConfig, patch, image: np.ndarray, run):
+    """The foreground source for training pairs, as ``augment`` selects, or None for the generator."""
+    from skymoments.sky.foregrounds import ImageBank
+
+    aug = cfg.augment
+    if aug.source == "generator":
+        return None
+    if aug.source != "single_image":
+        raise ValueError(f"augment.source={aug.source!r}; choose single_image or generator")
+    images = image[None]
+    if aug.bank:
+        from skymoments.synthesis.bank import ensure_bank
+
+        t0 = time.perf_counter()
+        bank = ensure_bank(image, cfg.synthesis, seed=int(cfg.seed))
+        images = np.concatenate([images, bank.images], axis=0)
+        run.log_metrics({"perf/bank_s": time.perf_counter() - t0})
+        run.set_tags({"bank_path": str(bank.path), "bank_reused": str(bank.reused)})
+        if bank.metadata.get("s_per_image") is not None:
+            run.log_metrics({"perf/synthesis_s_per_image": float(bank.metadata["s_per_image"])})
+    return ImageBank(images, symmetries=bool(aug.symmetries))
+
+
+def training_config(cfg: DictConfig) -> DictConfig:
+    """The config of the training scenario: foreground amplitude fixed unless rescaled."""
+    if cfg.augment.get("amplitude_rescale", True):
+        return cfg
+    out = OmegaConf.create(OmegaConf.to_container(cfg, resolve=True))
+    out.prior.a_fg = {"dist": "fixed", "value": 1.0}
+    return out
+
+
+def baselines(cfg: DictConfig, scenario, image: np.ndarray):
+    """The Gaussian-foreground Wiener filter, and the exact posterior where one exists."""
+    from skymoments.calibration.wiener import WienerFilter, estimate_power_2d_from_image
+
+    patch = scenario.patch
+    s_ee, s_bb = scenario.mean_signal_power_2d()
+    a2 = scenario.prior_second_moment("a_fg")
+    noise2d = scenario.mean_noise_power_2d()
+    fg_ee, fg_bb = estimate_power_2d_from_image(image, patch)
+    wiener = WienerFilter(patch, s_ee, s_bb, a2 * fg_ee + noise2d, a2 * fg_bb + noise2d)
+    exact = None
+    if scenario.is_gaussian_fixed():
+        t_ee, t_bb = scenario.true_noise_power_2d()
+        exact = WienerFilter(patch, s_ee, s_bb, t_ee, t_bb)
+    return wiener, exact
+
+
+def run_study(cfg: DictConfig, run) -> dict[str, float]:
+    """Train, evaluate and log one study into the open tracked ``run``; return its metrics."""
+    from skymoments.calibration.report import evaluate_posterior, write_posterior
+    from skymoments.maps import FlatPatch
+    from skymoments.moments.pipeline import predict_moments, train_moments
+    from skymoments.sky.build import scenario_from_config
+    from skymoments.sky.seeds import streams
+
+    out = job_dir()
+    patch = FlatPatch(int(cfg.patch.npix), float(cfg.patch.pixel_arcmin))
+    val_scenario = scenario_from_config(cfg)
+    image = training_image(cfg, patch)
+    fg = training_foreground(cfg, patch, image, run)
+    train_scenario = scenario_from_config(training_config(cfg), foreground=fg)
+
+    result = train_moments(cfg, train_scenario, val_scenario, logger=run.lightning_logger(),
+                           workdir=out / "checkpoints")
+    run.log_metrics({k: float(v) for k, v in result.perf.items()})
+
+    # Calibration is judged on a fresh set of independent generator draws: neither trained
+    # on nor used for early stopping.
+    rng = streams(int(cfg.seed), "eval")["eval"]
+    test = val_scenario.draw_components(rng, int(cfg.train.n_val))
+    mean, std = predict_moments(result.model, test["data_qu"])
+    wiener, exact = baselines(cfg, val_scenario, image) if cfg.eval.wiener else (None, None)
+    report = evaluate_posterior(
+        test["signal_eb"], test["data_qu"], mean, std, patch,
+        foreground_qu=test["foreground_qu"], wiener=wiener, exact=exact,
+        n_fg_bins=int(cfg.eval.fg_bins),
+    )
+    run.log_metrics({**report.metrics, **result.metrics})
+    run.log_artifact(str(save_arrays(out / "calibration_arrays.npz", report.arrays,
+                                     test["signal_eb"], mean, std)), artifact_path="calibration")
+    for path, fig in report.figures.items():
+        run.log_figure(fig, path)
+    header = {"RUNID": run.run_id, "NAME": str(cfg.name), "SEED": int(cfg.seed)}
+    for written in write_posterior(out / "posterior", mean, std, patch, header=header):
+        run.log_artifact(str(written), artifact_path="maps")
+    run.log_model(result.model, name="model", registered_name=cfg.tracking.get("register_as"))
+    return report.metrics
+
+
+def save_arrays(path: Path, arrays: dict, truth, mean, std) -> Path:
+    """The report's curves plus z histograms, for ``compare`` to overlay across runs.
+
+    Written as ``calibration/arrays.npz``: ``coverage_levels``, ``coverage_E``/``_B``,
+    ``z_hist_edges`` and ``z_hist_E``/``_B`` (densities), and every other report array.
+    """
+    from skymoments.atomic import save_npz
+
+    z = (np.asarray(truth) - mean) / std
+    edges = np.linspace(-5.0, 5.0, 51)
+    extra = {"z_hist_edges": edges}
+    for i, c in enumerate("EB"):
+        extra[f"z_hist_{c}"] = np.histogram(z[:, i], bins=edges, density=True)[0]
+    plain = {k: np.asarray(v) for k, v in arrays.items() if np.asarray(v).dtype != object}
+    final = path.with_name("arrays.npz")
+    return save_npz(final, **plain, **extra)
+
+
+@hydra_task
+def main(cfg: DictConfig) -> float | None:
+    from skymoments.tracking import print_run_summary, run_job_safely, tracked_run
+
+    validate(cfg)
+
+    def job(cfg: DictConfig) -> float:
+        with tracked_run(cfg, run_name=str(cfg.name)) as run:
+            run.log_config(cfg)
+            metrics = run_study(cfg, run)
+            print_run_summary(run, metrics, keys=SUMMARY_KEYS)
+        return objective(cfg, metrics)
+
+    return run_job_safely(job, cfg)
+
+
+def objective(cfg: DictConfig, metrics: dict[str, float]) -> float:
+    """The scalar a sweeper optimizes (``hparams_search`` picks it; default eval/mse_B)."""
+    key = cfg.get("objective", "eval/mse_B")
+    if key == "calibration_score":
+        from skymoments.calibration.metrics import calibration_score_from_metrics
+
+        return calibration_score_from_metrics(metrics)
+    return float(metrics.get(key, float("nan")))
