@@ -128,7 +128,7 @@ def run_study(cfg: DictConfig, run) -> dict[str, float]:
         n_fg_bins=int(cfg.eval.fg_bins),
     )
     run.log_metrics({**report.metrics, **result.metrics})
-    run.log_artifact(str(save_arrays(out / "calibration_arrays.npz", report.arrays,
+    run.log_artifact(str(save_arrays(out / "arrays.npz", report.arrays,
                                      test["signal_eb"], mean, std)), artifact_path="calibration")
     for path, fig in report.figures.items():
         run.log_figure(fig, path)
@@ -153,8 +153,7 @@ def save_arrays(path: Path, arrays: dict, truth, mean, std) -> Path:
     for i, c in enumerate("EB"):
         extra[f"z_hist_{c}"] = np.histogram(z[:, i], bins=edges, density=True)[0]
     plain = {k: np.asarray(v) for k, v in arrays.items() if np.asarray(v).dtype != object}
-    final = path.with_name("arrays.npz")
-    return save_npz(final, **plain, **extra)
+    return save_npz(path, **plain, **extra)
 
 
 @hydra_task

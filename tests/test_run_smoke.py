@@ -1,0 +1,89 @@
+"""`skymoments run`: a smoke study is tracked end to end; sweeps give parent and children runs."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import mlflow
+import pytest
+
+NAMED_METRICS = (
+    "calib/z_mean_E", "calib/z_std_E", "calib/cov68_E", "calib/cov95_E", "calib/cov997_E",
+    "calib/z_mean_B", "calib/z_std_B", "calib/cov68_B", "calib/cov95_B", "calib/cov997_B",
+    "calib/ks_E", "calib/ks_B", "eval/mse_E", "eval/mse_B",
+    "eval/mse_ratio_wiener_E", "eval/mse_ratio_wiener_B",
+    "train/loss_mean", "val/loss_mean", "train/loss_var", "val/loss_var",
+    "perf/train_samples_per_s",
+)
+NAMED_ARTIFACTS = (
+    "config/resolved.yaml", "maps/grid.png", "plots/z_hist.png", "plots/coverage.png",
+    "plots/spectra.png", "calibration/arrays.npz", "maps/posterior.npz", "maps/posterior.fits",
+)
+
+
+def _skymoments(*args: str, cwd) -> subprocess.CompletedProcess:
+    cmd = [sys.executable, "-m", "skymoments.cli", *args]
+    return subprocess.run(cmd, cwd=cwd, capture_output=True, text=True, timeout=900)
+
+
+def _client(root):
+    uri = f"sqlite:///{root / 'mlflow.db'}"
+    return mlflow.MlflowClient(tracking_uri=uri)
+
+
+def _runs(client, experiment: str):
+    exp = client.get_experiment_by_name(experiment)
+    assert exp is not None, f"no experiment {experiment!r}"
+    return client.search_runs([exp.experiment_id])
+
+
+def _artifact_paths(client, run_id: str, path: str = "") -> set[str]:
+    out = set()
+    for item in client.list_artifacts(run_id, path):
+        if item.is_dir:
+            out |= _artifact_paths(client, run_id, item.path)
+        else:
+            out.add(item.path)
+    return out
+
+
+@pytest.mark.slow
+def test_smoke_run_is_finished_with_named_metrics_and_artifacts(tmp_path):
+    root = tmp_path / "store"
+    proc = _skymoments("run", "experiment=smoke", f"tracking.root={root}", cwd=tmp_path)
+    assert proc.returncode == 0, proc.stderr[-4000:]
+    client = _client(root)
+    runs = _runs(client, "smoke")
+    assert len(runs) == 1
+    run = runs[0]
+    assert run.info.status == "FINISHED"
+    for key in NAMED_METRICS:
+        assert key in run.data.metrics, key
+    assert run.data.params["patch.npix"] == "32"
+    paths = _artifact_paths(client, run.info.run_id)
+    for path in NAMED_ARTIFACTS:
+        assert path in paths, (path, sorted(paths))
+    assert any(p.startswith("model/") for p in paths)
+    assert "mlflow ui --backend-store-uri" in proc.stdout
+    assert run.info.run_id in proc.stdout
+
+
+@pytest.mark.slow
+def test_sweep_gives_parent_and_children_and_survives_a_failed_job(tmp_path):
+    # The second job's learning rate is refused by torch.optim at run time (after its run
+    # was opened): that job must be FAILED and the first must still finish.
+    root = tmp_path / "store"
+    proc = _skymoments(
+        "run", "-m", "experiment=smoke", "train.optimizer.lr=0.002,-1.0",
+        f"tracking.root={root}", cwd=tmp_path,
+    )
+    assert proc.returncode == 0, proc.stderr[-4000:]
+    client = _client(root)
+    runs = _runs(client, "smoke")
+    parents = [r for r in runs if "mlflow.parentRunId" not in r.data.tags]
+    children = [r for r in runs if "mlflow.parentRunId" in r.data.tags]
+    assert len(parents) == 1 and len(children) == 2
+    assert {c.data.tags["mlflow.parentRunId"] for c in children} == {parents[0].info.run_id}
+    status = {c.data.params["train.optimizer.lr"]: c.info.status for c in children}
+    assert status == {"0.002": "FINISHED", "-1.0": "FAILED"}
