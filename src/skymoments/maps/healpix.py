@@ -161,7 +161,7 @@ def _parse_cls(cls) -> np.ndarray:
     return arr
 
 
-def synfast_tqu(cls, nside: int, lmax: int | None = None, seed=None, pixwin: bool = False):
+def synfast_tqu(cls, nside: int, lmax: int | None = None, seed=None, pixwin=False):
     """A full-sky Gaussian T/Q/U realization (healpy ``synfast`` with ``new=True``).
 
     Parameters
@@ -176,8 +176,11 @@ def synfast_tqu(cls, nside: int, lmax: int | None = None, seed=None, pixwin: boo
     seed : int or None
         Seed of the draw; None draws fresh entropy. healpy draws from numpy's global
         legacy generator: it is seeded for the call and restored afterwards.
-    pixwin : bool
-        Convolve with the HEALPix pixel window.
+    pixwin : bool or ndarray, shape (nl,) or (2, nl)
+        True: convolve with healpy's HEALPix pixel window (healpy downloads its window
+        files on first use, so this needs them installed or a network). An array: the
+        window per ell from ell = 0 to use instead, one for all fields or (temperature,
+        polarization); it multiplies the alms, so the spectra by its square.
 
     Returns
     -------
@@ -191,12 +194,32 @@ def synfast_tqu(cls, nside: int, lmax: int | None = None, seed=None, pixwin: boo
         lmax = min(nl - 1, 3 * nside - 1)
     if not isinstance(lmax, int | np.integer) or not 2 <= lmax <= nl - 1:
         raise ValueError(f"lmax must be an integer in [2, {nl - 1}] (the cls length), got {lmax!r}")
+    use_healpy_window = pixwin is True
+    if not isinstance(pixwin, bool):
+        win = np.asarray(pixwin, dtype=float)
+        win = np.stack([win, win]) if win.ndim == 1 else win
+        if win.ndim != 2 or win.shape[0] != 2 or win.shape[1] < lmax + 1:
+            raise ValueError(
+                f"pixwin array has shape {np.shape(pixwin)}; expected (nl,) or (2, nl) with "
+                f"nl >= lmax + 1 = {lmax + 1}"
+            )
+        if not np.all(np.isfinite(win)):
+            raise ValueError("pixwin contains NaN or infinite values")
+        wt, wp = win[0, : lmax + 1], win[1, : lmax + 1]
+        arr = arr[:, : lmax + 1] * np.array([wt * wt, wp * wp, wp * wp, wt * wp])
     legacy_seed = int(np.random.SeedSequence(seed).generate_state(1)[0])
     # healpy draws from numpy's global legacy generator and takes no Generator.
     state = np.random.get_state()  # noqa: NPY002
     try:
         np.random.seed(legacy_seed)  # noqa: NPY002
-        maps = hp.synfast(list(arr), nside, lmax=int(lmax), new=True, pixwin=pixwin, pol=True)
+        maps = hp.synfast(
+            list(arr), nside, lmax=int(lmax), new=True, pixwin=use_healpy_window, pol=True
+        )
+    except OSError as err:  # healpy fetches its pixel-window files over the network
+        raise RuntimeError(
+            f"healpy could not load its pixel window for nside {nside} ({err}); install "
+            "healpy's data files, or pass pixwin=False or a window array"
+        ) from err
     finally:
         np.random.set_state(state)  # noqa: NPY002
     return np.asarray(maps, dtype=float)
