@@ -1,0 +1,323 @@
+"""Train both stages from a config and predict posterior moments.
+
+``train_moments`` fits the scalers on training draws, trains the mean network (stage one),
+restores its best weights, freezes it, trains the variance network (stage two), restores
+its best weights, and predicts on the fixed validation set.
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import lightning.pytorch as pl
+import numpy as np
+import torch
+from hydra.utils import instantiate
+from lightning.pytorch.callbacks import EarlyStopping, ModelCheckpoint, TQDMProgressBar
+from omegaconf import DictConfig, OmegaConf
+
+from skymoments.moments.data import MomentsDataModule, stream_generator
+from skymoments.moments.perf import DataWaitTimer
+from skymoments.moments.stages import MeanModule, VarianceModule
+from skymoments.nets import ChannelScaler, PosteriorMoments, build_network
+from skymoments.sky.seeds import torch_seed
+
+# Trainer arguments the pipeline sets itself, from cfg.train or per stage.
+RESERVED_TRAINER_KEYS = (
+    "max_epochs",
+    "callbacks",
+    "logger",
+    "default_root_dir",
+    "gradient_clip_val",
+)
+
+
+class StageProgressBar(TQDMProgressBar):
+    """A tqdm progress bar whose description names the stage: ``stage 1/2 mean, epoch 3``."""
+
+    def __init__(self, label: str) -> None:
+        super().__init__()
+        self.label = label
+
+    def on_train_epoch_start(self, trainer, *args) -> None:
+        super().on_train_epoch_start(trainer, *args)
+        self.train_progress_bar.set_description(f"{self.label}, epoch {trainer.current_epoch}")
+
+
+@dataclass
+class MomentsResult:
+    """What :func:`train_moments` returns.
+
+    Attributes
+    ----------
+    model : PosteriorMoments
+        On the CPU, in eval mode; Q/U in uK to (mean, variance) of E/B.
+    val_data_qu : ndarray, shape (n_val, 2, npix, npix), microkelvin
+    val_target_eb : ndarray, shape (n_val, 2, npix, npix), microkelvin
+    val_params : ndarray, shape (n_val, n_params)
+    param_names : tuple of str
+    mean_eb : ndarray, shape (n_val, 2, npix, npix), microkelvin
+        Predicted posterior mean on the validation set.
+    std_eb : ndarray, shape (n_val, 2, npix, npix), microkelvin
+        Predicted posterior standard deviation on the validation set.
+    perf : dict of str to float
+        ``perf/train_samples_per_s``, ``perf/data_draw_share`` (both stages), the same per
+        stage (suffix ``_mean``, ``_var``), ``perf/train_s_<stage>`` wall seconds and
+        ``perf/epochs_<stage>``.
+    metrics : dict of str to float
+        ``val/loss_mean_best`` and ``val/loss_var_best``.
+    checkpoints : dict of str to str
+        Best checkpoint path of each stage.
+    """
+
+    model: PosteriorMoments
+    val_data_qu: np.ndarray
+    val_target_eb: np.ndarray
+    val_params: np.ndarray
+    param_names: tuple
+    mean_eb: np.ndarray
+    std_eb: np.ndarray
+    perf: dict = field(default_factory=dict)
+    metrics: dict = field(default_factory=dict)
+    checkpoints: dict = field(default_factory=dict)
+
+
+def _trainer_kwargs(cfg_trainer) -> dict:
+    kwargs = instantiate(cfg_trainer, _convert_="all") if cfg_trainer is not None else {}
+    kwargs = dict(kwargs or {})
+    for key in RESERVED_TRAINER_KEYS:
+        if key in kwargs:
+            raise ValueError(
+                f"trainer.{key} is set by the pipeline; remove it from the trainer config "
+                "(epochs: train.max_epochs_mean / train.max_epochs_var; clipping: "
+                "train.gradient_clip_val)"
+            )
+    return kwargs
+
+
+def fit_scalers(train_scenario, n: int, seed: int) -> tuple[ChannelScaler, ChannelScaler]:
+    """Input (Q/U, centred) and target (E/B, zero shift) scalers from ``n`` training draws.
+
+    Drawn from the ``scalers`` seed stream, so they do not reuse any training batch.
+    """
+    if isinstance(n, bool) or not isinstance(n, int) or n < 2:
+        raise ValueError(f"train.fit_scalers_n must be an integer >= 2, got {n!r}")
+    draw = train_scenario.draw(stream_generator(seed, "scalers"), n)
+    n_in = int(np.shape(draw.data_qu)[1])
+    n_out = int(np.shape(draw.target_eb)[1])
+    return (
+        ChannelScaler(n_in, center=True).fit(draw.data_qu),
+        ChannelScaler(n_out, center=False).fit(draw.target_eb),
+    )
+
+
+def _fit_stage(module, dm, *, label, monitor, max_epochs, cfg, logger, callbacks, workdir):
+    """Fit one stage with checkpointing and early stopping; restore the best weights."""
+    ckpt = ModelCheckpoint(
+        dirpath=str(workdir),
+        filename="best",
+        monitor=monitor,
+        mode="min",
+        save_top_k=1,
+        auto_insert_metric_name=False,
+        enable_version_counter=False,
+    )
+    stop = EarlyStopping(monitor=monitor, mode="min", patience=int(cfg.train.patience))
+    timer = DataWaitTimer()
+    kwargs = _trainer_kwargs(cfg.get("trainer"))
+    cbs = [ckpt, stop, timer, *callbacks]
+    if kwargs.get("enable_progress_bar", True):
+        cbs.append(StageProgressBar(label))
+    trainer = pl.Trainer(
+        max_epochs=int(max_epochs),
+        callbacks=cbs,
+        logger=logger if logger is not None else False,
+        default_root_dir=str(workdir),
+        gradient_clip_val=cfg.train.get("gradient_clip_val"),
+        **kwargs,
+    )
+    t0 = time.perf_counter()
+    with warnings.catch_warnings():
+        # The frozen mean network of stage two is in eval mode on purpose.
+        warnings.filterwarnings("ignore", message=r".*module\(s\) in eval mode.*")
+        # TrainDrawStream splits its steps over the workers itself, so its length is exact.
+        warnings.filterwarnings("ignore", message=r".*`IterableDataset` has `__len__` defined.*")
+        trainer.fit(module, datamodule=dm)
+    wall = time.perf_counter() - t0
+    best = ckpt.best_model_path
+    if best:
+        state = torch.load(best, map_location="cpu", weights_only=False)["state_dict"]
+        module.load_state_dict(state)
+    best_score = ckpt.best_model_score
+    return {
+        "timer": timer,
+        "wall": wall,
+        "epochs": trainer.current_epoch,
+        "best_path": best,
+        "best_score": float(best_score) if best_score is not None else float("nan"),
+    }
+
+
+def train_moments(
+    cfg: DictConfig,
+    train_scenario,
+    val_scenario,
+    logger=None,
+    callbacks=(),
+    workdir: str | Path = "checkpoints",
+) -> MomentsResult:
+    """Train the mean stage, then the variance stage, and predict on the validation set.
+
+    Parameters
+    ----------
+    cfg : DictConfig
+        Uses ``cfg.seed``, ``cfg.model`` (``mean``, ``variance`` network nodes,
+        ``positivity``, optional ``eps``), ``cfg.train`` (batch_size, steps_per_epoch,
+        n_val, max_epochs_mean, max_epochs_var, patience, num_workers, optimizer,
+        scheduler, fit_scalers_n, gradient_clip_val, optional val_batch_size) and
+        ``cfg.trainer`` (Lightning Trainer keyword arguments).
+    train_scenario, val_scenario : skymoments.sky.Scenario
+        Training draws (foreground from the bank or the generator) and validation draws
+        (independent generator foregrounds).
+    logger : Lightning logger, optional
+        Shared by both stages (metrics ``train/loss_mean``, ``val/loss_mean``,
+        ``train/loss_var``, ``val/loss_var`` per epoch).
+    callbacks : sequence of Lightning callbacks
+        Added to both stages' trainers.
+    workdir : path
+        Where the stage checkpoints go (``<workdir>/mean/best.ckpt``, ``.../var/...``).
+
+    Returns
+    -------
+    MomentsResult
+    """
+    if isinstance(cfg, dict):
+        cfg = OmegaConf.create(cfg)
+    workdir = Path(workdir).absolute()
+    seed = int(cfg.seed)
+    tr = cfg.train
+    t_start = time.perf_counter()
+
+    input_scaler, target_scaler = fit_scalers(train_scenario, int(tr.fit_scalers_n), seed)
+    torch.manual_seed(torch_seed(seed, "init"))
+    mean_net = build_network(cfg.model.mean, key="model.mean")
+    var_net = build_network(cfg.model.variance, key="model.variance")
+    positivity = str(cfg.model.get("positivity", "softplus"))
+    eps = float(cfg.model.get("eps", 1e-6))
+    model = PosteriorMoments(mean_net, var_net, input_scaler, target_scaler, positivity, eps)
+
+    optimizer = instantiate(tr.optimizer)
+    scheduler = instantiate(tr.scheduler) if tr.get("scheduler") is not None else None
+    dm = MomentsDataModule(
+        train_scenario,
+        val_scenario,
+        batch_size=int(tr.batch_size),
+        steps_per_epoch=int(tr.steps_per_epoch),
+        n_val=int(tr.n_val),
+        seed=seed,
+        num_workers=int(tr.get("num_workers", 0)),
+        val_batch_size=tr.get("val_batch_size"),
+        stage="mean",
+    )
+    common = {"cfg": cfg, "logger": logger, "callbacks": list(callbacks)}
+
+    mean_module = MeanModule(mean_net, optimizer, scheduler, input_scaler, target_scaler)
+    s1 = _fit_stage(
+        mean_module,
+        dm,
+        label="stage 1/2 mean",
+        monitor="val/loss_mean",
+        max_epochs=tr.max_epochs_mean,
+        workdir=workdir / "mean",
+        **common,
+    )
+
+    dm.set_stage("var")
+    var_module = VarianceModule(
+        mean_net, var_net, positivity, optimizer, scheduler, input_scaler, target_scaler, eps
+    )
+    s2 = _fit_stage(
+        var_module,
+        dm,
+        label="stage 2/2 variance",
+        monitor="val/loss_var",
+        max_epochs=tr.max_epochs_var,
+        workdir=workdir / "var",
+        **common,
+    )
+
+    model = model.cpu().eval()
+    val = dm.val_draw()
+    mean_eb, std_eb = predict_moments(model, val.data_qu, batch_size=int(dm.val_batch_size))
+
+    perf = {}
+    for name, st in (("mean", s1), ("var", s2)):
+        perf[f"perf/train_samples_per_s_{name}"] = st["timer"].samples_per_s
+        perf[f"perf/data_draw_share_{name}"] = st["timer"].data_share
+        perf[f"perf/train_s_{name}"] = st["wall"]
+        perf[f"perf/epochs_{name}"] = float(st["epochs"])
+    timers = (s1["timer"], s2["timer"])
+    wait = sum(t.wait_s for t in timers)
+    steady = sum(t.wait_s + t.step_s for t in timers)
+    total = sum(t.wait_s + t.step_s + t.first_wait_s + t.first_step_s for t in timers)
+    perf["perf/train_samples_per_s"] = sum(t.samples for t in timers) / total
+    perf["perf/data_draw_share"] = wait / steady if steady > 0 else float("nan")
+    perf["perf/train_moments_s"] = time.perf_counter() - t_start
+    return MomentsResult(
+        model=model,
+        val_data_qu=np.asarray(val.data_qu),
+        val_target_eb=np.asarray(val.target_eb),
+        val_params=np.asarray(val.params),
+        param_names=tuple(val.param_names),
+        mean_eb=mean_eb,
+        std_eb=std_eb,
+        perf=perf,
+        metrics={"val/loss_mean_best": s1["best_score"], "val/loss_var_best": s2["best_score"]},
+        checkpoints={"mean": s1["best_path"], "var": s2["best_path"]},
+    )
+
+
+@torch.no_grad()
+def predict_moments(
+    model: PosteriorMoments, data_qu, batch_size: int = 64, device=None
+) -> tuple[np.ndarray, np.ndarray]:
+    """Posterior mean and standard deviation of E/B for Q/U data maps.
+
+    Parameters
+    ----------
+    model : PosteriorMoments
+    data_qu : ndarray, shape (n, 2, npix, npix), microkelvin
+    batch_size : int
+        Maps per forward pass.
+    device : torch.device or str, optional
+        Default: where the model's parameters are.
+
+    Returns
+    -------
+    mean_eb : ndarray, shape (n, 2, npix, npix), microkelvin, float64
+    std_eb : ndarray, shape (n, 2, npix, npix), microkelvin, float64
+    """
+    data = np.asarray(data_qu)
+    if data.ndim != 4:
+        raise ValueError(f"data_qu must be shaped (n, 2, npix, npix), got {data.shape}")
+    if not np.all(np.isfinite(data)):
+        raise ValueError("data_qu contains NaN or infinite values; mask or fill them first")
+    if isinstance(batch_size, bool) or not isinstance(batch_size, int) or batch_size < 1:
+        raise ValueError(f"batch_size must be a positive integer, got {batch_size!r}")
+    if device is None:
+        device = next(model.parameters()).device
+    was_training = model.training
+    model.eval()
+    means, stds = [], []
+    try:
+        for i in range(0, len(data), batch_size):
+            x = torch.as_tensor(data[i : i + batch_size], dtype=torch.float32, device=device)
+            mean, var = model(x)
+            means.append(mean.double().cpu().numpy())
+            stds.append(var.double().sqrt().cpu().numpy())
+    finally:
+        model.train(was_training)
+    return np.concatenate(means), np.concatenate(stds)

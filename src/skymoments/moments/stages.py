@@ -1,0 +1,191 @@
+"""The two training stages as LightningModules: posterior mean, then posterior variance.
+
+Both regress in scaled units (the input and target :class:`~skymoments.nets.ChannelScaler`
+applied inside the step), so the losses are O(1) whatever the map amplitudes.
+"""
+
+from __future__ import annotations
+
+import inspect
+
+import lightning.pytorch as pl
+import torch
+import torch.nn.functional as F
+from torch import nn
+
+from skymoments.nets.posterior import Positivity
+
+
+def _configure(module: pl.LightningModule, params, monitor: str):
+    """Finish the partial optimizer and scheduler of a stage.
+
+    A scheduler whose length argument is not set in config gets the stage's own length:
+    ``T_max`` = ``max_epochs`` (epoch schedulers such as CosineAnnealingLR), or
+    ``total_steps`` = the trainer's estimated optimizer steps (OneCycleLR, stepped per
+    batch). ReduceLROnPlateau watches the stage's validation loss.
+    """
+    optimizer = module.hparams.optimizer(params=params)
+    make_scheduler = module.hparams.scheduler
+    if make_scheduler is None:
+        return optimizer
+    func = getattr(make_scheduler, "func", make_scheduler)
+    given = getattr(make_scheduler, "keywords", {})
+    accepted = inspect.signature(func).parameters
+    extra, interval = {}, "epoch"
+    if "T_max" in accepted and "T_max" not in given:
+        extra["T_max"] = max(int(module.trainer.max_epochs), 1)
+    if "total_steps" in accepted and "total_steps" not in given:
+        extra["total_steps"] = int(module.trainer.estimated_stepping_batches)
+        interval = "step"
+    scheduler = make_scheduler(optimizer, **extra)
+    return {
+        "optimizer": optimizer,
+        "lr_scheduler": {"scheduler": scheduler, "interval": interval, "monitor": monitor},
+    }
+
+
+class MeanModule(pl.LightningModule):
+    """Stage one: ``f(d) ~ E[target | d]`` by least squares.
+
+    Minimizing the mean squared error between ``f(d)`` and the target over pairs drawn
+    from the prior and the simulator gives the posterior mean (Jeffrey & Wandelt 2020,
+    arXiv:2011.05991, the first moment-network loss).
+
+    Parameters
+    ----------
+    net : nn.Module
+        Scaled Q/U (n, 2, npix, npix) to scaled E/B (n, 2, npix, npix).
+    optimizer : callable
+        ``optimizer(params=...)``, e.g. a ``functools.partial`` of ``torch.optim.AdamW``
+        (Hydra ``_partial_: true``).
+    scheduler : callable or None
+        ``scheduler(optimizer, ...)``; see :func:`_configure` for the filled-in lengths.
+    input_scaler, target_scaler : nn.Module or None
+        Fitted :class:`~skymoments.nets.ChannelScaler`; None means no scaling.
+    """
+
+    def __init__(
+        self,
+        net: nn.Module,
+        optimizer,
+        scheduler=None,
+        input_scaler: nn.Module | None = None,
+        target_scaler: nn.Module | None = None,
+    ) -> None:
+        super().__init__()
+        self.save_hyperparameters(logger=False, ignore=["net", "input_scaler", "target_scaler"])
+        self.net = net
+        self.input_scaler = input_scaler if input_scaler is not None else nn.Identity()
+        self.target_scaler = target_scaler if target_scaler is not None else nn.Identity()
+
+    def forward(self, x_scaled: torch.Tensor) -> torch.Tensor:
+        return self.net(x_scaled)
+
+    def _step(self, batch, split: str) -> torch.Tensor:
+        data, target = batch[0], batch[1]
+        x = self.input_scaler(data)
+        t = self.target_scaler(target)
+        loss = F.mse_loss(self.net(x), t)
+        self.log(
+            f"{split}/loss_mean",
+            loss,
+            on_step=False,
+            on_epoch=True,
+            sync_dist=True,
+            prog_bar=True,
+            batch_size=data.shape[0],
+        )
+        return loss
+
+    def training_step(self, batch, batch_idx):
+        return self._step(batch, "train")
+
+    def validation_step(self, batch, batch_idx):
+        return self._step(batch, "val")
+
+    def configure_optimizers(self):
+        return _configure(self, self.net.parameters(), "val/loss_mean")
+
+
+class VarianceModule(pl.LightningModule):
+    """Stage two: ``g(d) ~ Var[target | d]`` with the mean network frozen.
+
+    Minimizes ``((target - f(d))**2 - g(d))**2`` per pixel and channel, whose minimiser is
+    the posterior variance (Jeffrey & Wandelt 2020, arXiv:2011.05991, second moment
+    loss), in scaled target units. ``g`` is kept positive by ``positivity`` (see
+    :class:`~skymoments.nets.Positivity`).
+
+    The mean network is put in eval mode and its parameters get ``requires_grad=False``;
+    :meth:`train` keeps it in eval mode whatever Lightning asks, so its batch-norm
+    statistics do not move either.
+
+    Parameters
+    ----------
+    mean_net : nn.Module
+        The trained stage-one network (frozen here).
+    var_net : nn.Module
+        Scaled Q/U to the raw variance output (before positivity).
+    positivity : {"softplus", "logvar"}
+    optimizer, scheduler, input_scaler, target_scaler
+        As in :class:`MeanModule`.
+    eps : float
+        Softplus floor, scaled units.
+    """
+
+    def __init__(
+        self,
+        mean_net: nn.Module,
+        var_net: nn.Module,
+        positivity: str,
+        optimizer,
+        scheduler=None,
+        input_scaler: nn.Module | None = None,
+        target_scaler: nn.Module | None = None,
+        eps: float = 1e-6,
+    ) -> None:
+        super().__init__()
+        self.save_hyperparameters(
+            logger=False, ignore=["mean_net", "var_net", "input_scaler", "target_scaler"]
+        )
+        self.mean_net = mean_net
+        self.mean_net.requires_grad_(False)
+        self.mean_net.eval()
+        self.var_net = var_net
+        self.positivity = Positivity(positivity, eps)
+        self.input_scaler = input_scaler if input_scaler is not None else nn.Identity()
+        self.target_scaler = target_scaler if target_scaler is not None else nn.Identity()
+
+    def train(self, mode: bool = True):
+        super().train(mode)
+        self.mean_net.eval()
+        return self
+
+    def forward(self, x_scaled: torch.Tensor) -> torch.Tensor:
+        return self.positivity(self.var_net(x_scaled))
+
+    def _step(self, batch, split: str) -> torch.Tensor:
+        data, target = batch[0], batch[1]
+        x = self.input_scaler(data)
+        t = self.target_scaler(target)
+        with torch.no_grad():
+            resid2 = (t - self.mean_net(x)) ** 2
+        loss = F.mse_loss(self(x), resid2)
+        self.log(
+            f"{split}/loss_var",
+            loss,
+            on_step=False,
+            on_epoch=True,
+            sync_dist=True,
+            prog_bar=True,
+            batch_size=data.shape[0],
+        )
+        return loss
+
+    def training_step(self, batch, batch_idx):
+        return self._step(batch, "train")
+
+    def validation_step(self, batch, batch_idx):
+        return self._step(batch, "val")
+
+    def configure_optimizers(self):
+        return _configure(self, self.var_net.parameters(), "val/loss_var")
