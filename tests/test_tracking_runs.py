@@ -220,3 +220,70 @@ def test_missing_tracking_node_is_a_clear_error():
     with pytest.raises(ValueError, match="no 'tracking' node"):
         with tracked_run(OmegaConf.create({"model": {}})):
             pass
+
+
+def test_ranks_other_than_zero_create_no_run(store, monkeypatch):
+    # Under DDP every rank runs the task; only rank zero owns the run (Lightning sets
+    # LOCAL_RANK in the processes it launches).
+    cfg = make_cfg(store, "ranks")
+    with tracked_run(cfg) as lead:
+        monkeypatch.setenv("LOCAL_RANK", "1")
+        with tracked_run(cfg) as follower:
+            assert follower.passive and follower.run_id == lead.run_id
+            follower.log_metrics({"m": 5.0})
+            follower.log_params({"p": 1})
+            assert follower.lightning_logger().run_id is None
+        monkeypatch.delenv("LOCAL_RANK")
+        lead.log_metrics({"m": 1.0})
+    (record,) = find_runs(cfg)
+    assert record.run_id == lead.run_id
+    assert record.metrics == {"m": 1.0} and record.params == {}
+
+
+def test_attach_adds_artifacts_without_touching_the_status(store, tmp_path):
+    from skymoments.tracking import attach_run
+
+    cfg = make_cfg(store, "attach")
+    with tracked_run(cfg) as run:
+        pass
+    folder = tmp_path / "report"
+    folder.mkdir()
+    (folder / "index.html").write_text("<html></html>")
+    (folder / "fig.png").write_bytes(b"\x89PNG\r\n\x1a\n")
+    handle = attach_run(cfg, run.run_id)
+    handle.log_artifact(folder, "report")
+    with pytest.raises(ValueError, match="does not exist"):
+        handle.log_artifact(tmp_path / "nope.txt")
+    listed = {f.path for f in client_of(run).list_artifacts(run.run_id, "report")}
+    assert listed == {"report/index.html", "report/fig.png"}
+    assert get_run(cfg, run.run_id).status == "FINISHED"
+
+
+def test_sweep_parent_abandoned_at_exit_is_marked_failed(store, tmp_path):
+    # If the sweep dies before on_multirun_end (an exception escaping the launcher), the
+    # atexit hook marks the parent FAILED instead of leaving it RUNNING.
+    import atexit
+
+    from skymoments.tracking.hydra_callbacks import SweepTracking
+
+    cfg = make_cfg(store, "abandoned")
+    cfg.hydra = {
+        "sweep": {"dir": "multirun/s"},
+        "runtime": {"cwd": str(tmp_path)},
+        "overrides": {"task": ["x=1,2"]},
+    }
+    callback = SweepTracking()
+    callback.on_multirun_start(cfg)
+    try:
+        parent_id = callback._record.run_id
+        assert (tmp_path / "multirun" / "s" / ".skymoments-parent-run").is_file()
+        assert os.environ["SKYMOMENTS_PARENT_RUN_ID"] == parent_id
+        assert get_run(cfg, parent_id).status == "RUNNING"
+        callback._abandoned()
+    finally:
+        atexit.unregister(callback._abandoned)
+        callback._release()
+    record = get_run(cfg, parent_id)
+    assert record.status == "FAILED"
+    assert record.tags["skymoments.sweep_overrides"] == "x=1,2"
+    assert "SKYMOMENTS_PARENT_RUN_ID" not in os.environ

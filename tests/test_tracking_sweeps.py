@@ -141,3 +141,25 @@ def test_single_run_has_no_parent_and_its_failure_propagates(tmp_path):
     assert run.parent_run_id is None
     assert run.tags["skymoments.run_kind"] == "single"
     assert run.tags["skymoments.overrides"] == "x=3 fail_on=3 tracking.root=store"
+
+
+@pytest.mark.slow
+def test_joblib_workers_find_the_parent(tmp_path):
+    # Jobs in loky worker processes find the parent through the sweep folder's file.
+    folder = write_app(tmp_path / "app")
+    result = run_app(
+        folder,
+        "-m",
+        "hydra/launcher=joblib",
+        "hydra.launcher.n_jobs=2",
+        "x=1,2",
+        "tracking.root=store",
+    )
+    assert result.returncode == 0, result.stderr[-3000:]
+    runs = find_runs(store_of(folder))
+    (parent,) = [r for r in runs if r.tags.get("skymoments.run_kind") == "sweep"]
+    children = [r for r in runs if r.parent_run_id == parent.run_id]
+    assert sorted(c.params["x"] for c in children) == ["1", "2"]
+    assert all(c.status == "FINISHED" for c in children)
+    assert {c.tags["skymoments.sweep_id"] for c in children} == {parent.tags["skymoments.sweep_id"]}
+    assert parent.tags["skymoments.n_children"] == "2"
