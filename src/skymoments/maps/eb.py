@@ -12,9 +12,12 @@ and the inverse ``Q = E cos 2phi - B sin 2phi``, ``U = E sin 2phi + B cos 2phi``
 corner mode of an even-sized patch, and the Nyquist row and column use ``sin 2phi = 0``
 (see ``_angles`` for why: it keeps the transform unitary and commuting with the patch
 symmetries of ``maps.symmetry``). This is the standard flat-sky relation (e.g.
-REFERENCES.md, "Flat-sky E/B"). With rows as y this is
-the COSMO-like convention used by HEALPix once a gnomonic patch is cut with y towards
-north; see ``maps.healpix`` for how the sphere maps onto it.
+REFERENCES.md, "Flat-sky E/B"). Q and U are measured from the x axis towards the y
+axis. On a patch cut by ``maps.healpix.cut_patch`` (rows towards north, columns towards
+east, the patch seen from outside the sphere) these E and B agree in sign with healpy's E
+and B (tested in tests/test_maps_healpix.py); at the patch centre the patch (Q, U) are
+minus HEALPix's COSMO (Q, U), whose angle is measured from south towards east. See
+``maps.healpix`` for the rest of the mapping.
 """
 
 from __future__ import annotations
