@@ -21,6 +21,7 @@ from skymoments.tracking import (
     metric_history,
     print_run_summary,
     tracked_run,
+    view_hint,
 )
 
 matplotlib.use("Agg")
@@ -214,6 +215,8 @@ def test_summary_prints_metrics_run_id_and_ui_command(store):
     assert hint in text
     assert run.run_id in text
     assert "1.023" in text and "calib/cov68_E" in text and "eval/mse_E" not in text
+    # For a server the hint is the run's page (MLflow UI route /#/experiments/<id>/runs/<id>).
+    assert view_hint("http://h:5000", "3", "abc") == "http://h:5000/#/experiments/3/runs/abc"
 
 
 def test_missing_tracking_node_is_a_clear_error():

@@ -65,9 +65,8 @@ def param_value(value: Any) -> str:
 def cap_value(text: str, limit: int = MAX_PARAM_LENGTH) -> str:
     """Cut ``text`` to at most ``limit`` characters, marking the cut.
 
-    The marker ``...[truncated]`` replaces the tail, so a capped value is recognizable and two
-    different long values that share the same head still compare equal only if they are equal
-    up to the cut.
+    The tail is replaced by ``...[truncated]`` so that a capped value is recognizable as such
+    in the MLflow UI; the full value stays in the ``config/resolved.yaml`` artifact.
     """
     if len(text) <= limit:
         return text

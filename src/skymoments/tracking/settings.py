@@ -122,7 +122,9 @@ def _missing(value: Any) -> bool:
     return value is None or value == "???" or value == ""
 
 
-def resolve_tracking(tracking: Any, *, base_dir: str | os.PathLike | None = None) -> tuple:
+def resolve_tracking(
+    tracking: Any, *, base_dir: str | os.PathLike | None = None
+) -> tuple[str, str | None, str | None]:
     """Resolve a ``tracking`` config node to concrete locations.
 
     Parameters
