@@ -1,0 +1,332 @@
+"""Writing a prediction: posterior files, a quick-look PNG, HEALPix maps; refusing overwrites.
+
+Files (``<name>`` is ``predict.name``, default ``posterior``), under ``predict.out``:
+
+``<name>.npz`` and ``<name>.fits``
+    Posterior mean and std of E/B, shape (m, 2, n, n), uK, written by
+    :func:`skymoments.calibration.report.write_posterior` (FITS: image HDUs ``MEAN`` and
+    ``STD`` with ``BUNIT = 'uK'``; provenance as JSON in ``PROVJSON`` and as cards). The
+    primary header also gets the standard cards of :func:`provenance_cards`.
+``<name>.png``
+    Quick look: mean E, mean B, std E, std B for the first patches.
+``<name>_healpix.fits``
+    HEALPix input only: columns ``MEAN_E``, ``MEAN_B``, ``STD_E``, ``STD_B`` (uK, RING),
+    ``healpy.UNSEEN`` outside the patches (:func:`project_to_healpix`).
+
+Everything is first written into a hidden staging folder beside the outputs and moved into
+place (``os.replace``, atomic per file) only once every file is complete; on any error the
+staging folder is removed, so no partial file is ever left under an output name.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import tempfile
+from collections.abc import Mapping
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from skymoments.maps.geometry import FlatPatch
+
+__all__ = [
+    "check_outputs",
+    "output_paths",
+    "project_to_healpix",
+    "provenance_cards",
+    "quicklook_figure",
+    "write_outputs",
+]
+
+MAX_CENTRE_CARDS = 999  # CLONnnn / CLATnnn stay within FITS's 8-character keywords
+
+
+def output_paths(out_dir: str | os.PathLike, name: str, healpix: bool) -> dict[str, Path]:
+    """The files a prediction writes, by role (``npz``, ``fits``, ``png``, ``healpix``).
+
+    Parameters
+    ----------
+    out_dir : path-like
+    name : str
+        File stem (``predict.name``): letters, digits, ``_ - .``.
+    healpix : bool
+        Whether the input is a HEALPix map (adds the ``healpix`` file).
+    """
+    text = str(name)
+    if not text or text.startswith(".") or any(not (c.isalnum() or c in "_-.") for c in text):
+        raise ValueError(
+            f"predict.name={name!r} must be a plain file stem (letters, digits, _ - .), e.g. "
+            "posterior"
+        )
+    root = Path(out_dir)
+    paths = {
+        "npz": root / f"{text}.npz",
+        "fits": root / f"{text}.fits",
+        "png": root / f"{text}.png",
+    }
+    if healpix:
+        paths["healpix"] = root / f"{text}_healpix.fits"
+    return paths
+
+
+def check_outputs(paths: Mapping[str, Path], force: bool) -> None:
+    """Refuse to run when an output exists and ``force`` is off; refuse a file as folder."""
+    for path in paths.values():
+        if path.parent.exists() and not path.parent.is_dir():
+            raise ValueError(
+                f"predict.out={str(path.parent)!r} is a file, not a folder; choose another "
+                "predict.out"
+            )
+        if path.is_dir():
+            raise ValueError(f"output {path} is a folder; choose another predict.out or name")
+        if path.exists() and not force:
+            raise ValueError(
+                f"output {path} already exists; pass predict.force=true to replace it, or "
+                "choose another predict.out (or predict.name)"
+            )
+
+
+def _card_value(value: Any) -> Any:
+    if isinstance(value, bool | int | float | str):
+        return value
+    if isinstance(value, np.generic):
+        return value.item()
+    return json.dumps(value, default=str)
+
+
+def provenance_cards(prov: Mapping[str, Any]) -> list[tuple[str, Any, str]]:
+    """Standard 8-character FITS cards for the provenance dict of a prediction.
+
+    Keys used: ``MODELURI``, ``MODELREF``, ``MODELNAM``, ``MODELVER``, ``MODELRUN``,
+    ``INPUT``, ``INSHA256``, ``INFORMAT``, ``QUCONV``, ``NSIDE``, ``PREDRUN``, and per patch
+    ``CLONi``/``CLATi`` (centre, deg) for HEALPix cuts. Long strings use FITS's CONTINUE
+    convention (astropy).
+    """
+    spec = (
+        ("MODELURI", "model_uri", "MLflow model URI"),
+        ("MODELREF", "model_ref", "model reference as given"),
+        ("MODELNAM", "model_name", "registered model name"),
+        ("MODELVER", "model_version", "registered model version"),
+        ("MODELRUN", "model_run_id", "MLflow run the model was trained in"),
+        ("INPUT", "input", "input file"),
+        ("INSHA256", "input_sha256", "SHA-256 of the input file"),
+        ("INFORMAT", "input_format", "array, image or healpix"),
+        ("QUCONV", "input_convention", "Q/U convention of the input"),
+        ("NSIDE", "nside", "HEALPix resolution of the input"),
+        ("PREDRUN", "prediction_run_id", "MLflow run of this prediction"),
+    )
+    cards = []
+    for key, name, comment in spec:
+        value = prov.get(name)
+        if value is None or value == "":
+            continue
+        cards.append((key, _card_value(value), comment))
+    centres = prov.get("centres") or []
+    for i, (lon, lat) in enumerate(centres[:MAX_CENTRE_CARDS]):
+        cards.append((f"CLON{i}", float(lon), f"centre of patch {i}: longitude [deg]"))
+        cards.append((f"CLAT{i}", float(lat), f"centre of patch {i}: latitude [deg]"))
+    return cards
+
+
+def _stamp_fits(path: Path, cards: list[tuple[str, Any, str]]) -> None:
+    from astropy.io import fits
+
+    with fits.open(path, mode="update") as hdul:
+        for key, value, comment in cards:
+            hdul[0].header[key] = (value, comment)
+        for hdu in hdul[1:]:
+            # Each image says where its maps came from without reading the primary.
+            for key in ("MODELURI", "INSHA256", "QUCONV"):
+                if key in hdul[0].header:
+                    hdu.header[key] = (hdul[0].header[key], hdul[0].header.comments[key])
+        hdul.flush()
+
+
+def project_to_healpix(
+    mean_eb: np.ndarray,
+    std_eb: np.ndarray,
+    centres: np.ndarray,
+    patch: FlatPatch,
+    nside: int,
+    interpolation: str = "bilinear",
+) -> tuple[np.ndarray, np.ndarray]:
+    """Project patch posteriors back onto HEALPix pixels, averaging where patches overlap.
+
+    Parameters
+    ----------
+    mean_eb, std_eb : ndarray, shape (k, 2, n, n), microkelvin
+    centres : ndarray, shape (k, 2), degrees
+        (lon, lat) each patch was cut at.
+    patch : FlatPatch
+    nside : int
+        Output resolution.
+    interpolation : {"bilinear", "nearest"}
+        See :func:`skymoments.maps.healpix.patch_to_healpix`.
+
+    Returns
+    -------
+    maps : ndarray, shape (4, 12 * nside**2), microkelvin
+        MEAN_E, MEAN_B, STD_E, STD_B; ``healpy.UNSEEN`` outside every patch. The mean maps
+        are averaged over the patches covering a pixel; the std maps are the square root of
+        the averaged variances, the std of an equal-weight mixture of the patch posteriors
+        when their means agree (E and B are scalars on the sphere: ``maps.healpix``).
+    counts : ndarray, shape (12 * nside**2,), int
+        How many patches cover each pixel.
+    """
+    import healpy as hp
+
+    from skymoments.maps.healpix import UNSEEN, patch_to_healpix
+
+    npix = hp.nside2npix(nside)
+    sums = np.zeros((4, npix))
+    counts = np.zeros(npix, dtype=np.int64)
+    for k, (lon, lat) in enumerate(np.asarray(centres, dtype=float)):
+        fields = np.stack([mean_eb[k, 0], mean_eb[k, 1], std_eb[k, 0] ** 2, std_eb[k, 1] ** 2])
+        on_sphere = patch_to_healpix(
+            fields, lon, lat, patch, nside, kind="scalar", interpolation=interpolation
+        )
+        seen = on_sphere[0] != UNSEEN
+        sums[:, seen] += on_sphere[:, seen]
+        counts[seen] += 1
+    out = np.full((4, npix), UNSEEN)
+    covered = counts > 0
+    out[:2, covered] = sums[:2, covered] / counts[covered]
+    out[2:, covered] = np.sqrt(sums[2:, covered] / counts[covered])
+    return out, counts
+
+
+def quicklook_figure(
+    mean_eb: np.ndarray,
+    std_eb: np.ndarray,
+    patch: FlatPatch,
+    titles: list[str] | None = None,
+    max_rows: int = 4,
+):
+    """Mean E, mean B, std E, std B of the first ``max_rows`` patches (rows north, up).
+
+    Parameters
+    ----------
+    mean_eb, std_eb : ndarray, shape (m, 2, n, n), microkelvin
+    patch : FlatPatch
+    titles : list of str, optional
+        Row labels (e.g. the patch centres).
+    max_rows : int
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+    """
+    from matplotlib.figure import Figure
+
+    rows = max(1, min(int(max_rows), len(mean_eb)))
+    side = np.degrees(patch.side_rad)
+    extent = (-side / 2, side / 2, -side / 2, side / 2)
+    fig = Figure(figsize=(10.0, 2.5 * rows + 0.3))
+    axes = fig.subplots(rows, 4, squeeze=False)
+    panels = (
+        ("mean E", lambda k: mean_eb[k, 0], "RdBu_r", True),
+        ("mean B", lambda k: mean_eb[k, 1], "RdBu_r", True),
+        ("std E", lambda k: std_eb[k, 0], "viridis", False),
+        ("std B", lambda k: std_eb[k, 1], "viridis", False),
+    )
+    for r in range(rows):
+        for c, (label, get, cmap, symmetric) in enumerate(panels):
+            ax = axes[r, c]
+            img = get(r)
+            if symmetric:
+                lim = float(np.max(np.abs(img))) or 1.0
+                vmin, vmax = -lim, lim
+            else:
+                vmin, vmax = float(np.min(img)), float(np.max(img))
+            im = ax.imshow(img, origin="lower", cmap=cmap, vmin=vmin, vmax=vmax, extent=extent)
+            title = f"{label} [uK]"
+            if c == 0 and titles:
+                title = f"{titles[r]}\n{title}"
+            ax.set_title(title, fontsize=8)
+            ax.tick_params(labelsize=6)
+            if r == rows - 1:
+                ax.set_xlabel("x (east) [deg]", fontsize=7)
+            if c == 0:
+                ax.set_ylabel("y (north) [deg]", fontsize=7)
+            fig.colorbar(im, ax=ax, fraction=0.046, pad=0.02).ax.tick_params(labelsize=6)
+    fig.tight_layout()
+    return fig
+
+
+def write_outputs(
+    paths: Mapping[str, Path],
+    mean_eb: np.ndarray,
+    std_eb: np.ndarray,
+    patch: FlatPatch,
+    provenance: Mapping[str, Any],
+    *,
+    force: bool = False,
+    healpix_maps: np.ndarray | None = None,
+    titles: list[str] | None = None,
+    quicklook_rows: int = 4,
+) -> dict[str, Path]:
+    """Write every output of a prediction, atomically (module docstring).
+
+    Parameters
+    ----------
+    paths : mapping of role to Path
+        From :func:`output_paths`; all in one folder.
+    mean_eb, std_eb : ndarray, shape (m, 2, n, n), microkelvin
+    patch : FlatPatch
+    provenance : mapping
+        JSON-serializable provenance (model URI and version, run ids, input hash, convention,
+        centres, ...); goes into every header.
+    force : bool
+        Replace existing outputs; otherwise they are refused (checked again just before the
+        move, in case a file appeared meanwhile).
+    healpix_maps : ndarray, shape (4, 12 * nside**2), optional
+        Needed when ``paths`` has a ``healpix`` entry.
+    titles : list of str, optional
+        Quick-look row labels.
+    quicklook_rows : int
+
+    Returns
+    -------
+    dict of role to Path
+        The written files.
+    """
+    from skymoments.calibration.report import write_posterior
+    from skymoments.maps.healpix import write_healpix_map
+
+    folders = {p.parent for p in paths.values()}
+    if len(folders) != 1:
+        raise ValueError(f"outputs must share one folder, got {sorted(map(str, folders))}")
+    out_dir = folders.pop()
+    out_dir.mkdir(parents=True, exist_ok=True)
+    check_outputs(paths, force)
+    if "healpix" in paths and healpix_maps is None:
+        raise ValueError("a HEALPix output needs healpix_maps")
+    prov = dict(provenance)
+    cards = provenance_cards(prov)
+    staging = Path(tempfile.mkdtemp(prefix=".predict-", suffix=".staging", dir=out_dir))
+    try:
+        staged: dict[str, Path] = {}
+        stem = staging / paths["npz"].stem
+        staged["npz"], staged["fits"] = write_posterior(stem, mean_eb, std_eb, patch, prov)
+        _stamp_fits(staged["fits"], cards)
+        fig = quicklook_figure(mean_eb, std_eb, patch, titles=titles, max_rows=quicklook_rows)
+        staged["png"] = staging / paths["png"].name
+        fig.savefig(staged["png"], dpi=110, format="png")
+        if "healpix" in paths:
+            staged["healpix"] = staging / paths["healpix"].name
+            write_healpix_map(
+                staged["healpix"],
+                healpix_maps,
+                column_names=("MEAN_E", "MEAN_B", "STD_E", "STD_B"),
+                units="uK",
+                extra_header=cards,
+            )
+        check_outputs(paths, force)
+        for role, final in paths.items():
+            os.replace(staged[role], final)
+    finally:
+        shutil.rmtree(staging, ignore_errors=True)
+    return dict(paths)

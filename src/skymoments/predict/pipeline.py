@@ -1,0 +1,466 @@
+"""Apply a tracked posterior-moment model to a user's maps: check everything, then compute.
+
+Order of work, so that every expected refusal comes before any compute (and before the
+model's weights are loaded):
+
+1. parse ``cfg.predict`` (:class:`PredictOptions`) and refuse existing outputs without
+   ``predict.force``;
+2. resolve the model reference in the tracking store and read its training geometry from
+   the run params (:func:`~skymoments.predict.source.resolve_model_source`);
+3. read the input and check it (NaN/inf, shape, pixel size, units, polarization columns and
+   convention) against that geometry (:mod:`skymoments.predict.inputs`);
+4. HEALPix input: cut one patch per centre at the model's geometry;
+5. load the model and run it (:func:`skymoments.moments.pipeline.predict_moments`);
+6. write the outputs atomically (:mod:`skymoments.predict.outputs`) and, when
+   ``predict.log_run``, log them as an MLflow run in the same store.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import os
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from omegaconf import DictConfig, ListConfig, OmegaConf
+
+from skymoments.maps.geometry import FlatPatch
+from skymoments.predict.inputs import (
+    CONVENTIONS,
+    FORMATS,
+    MapInput,
+    check_patch_geometry,
+    detect_format,
+    parse_centres,
+    read_input,
+)
+from skymoments.predict.outputs import check_outputs, output_paths, project_to_healpix
+from skymoments.predict.source import ModelSource, resolve_model_source
+from skymoments.tracking import load_model
+
+__all__ = ["PredictOptions", "PredictionResult", "cut_patches", "run_prediction"]
+
+INTERPOLATIONS = ("bilinear", "nearest")
+# A HEALPix map whose pixels are much coarser than the model's holds no power on the scales
+# the network was trained to see: we warn when the HEALPix pixel side exceeds this many
+# patch pixels (a rule of thumb, common practice: resolve a scale with >= 2 samples).
+COARSE_MAP_FACTOR = 2.0
+
+
+@dataclass(frozen=True)
+class PredictOptions:
+    """The ``predict`` config node, checked (keys documented in ``conf/predict/default.yaml``)."""
+
+    model: str
+    input: str
+    format: str = "auto"
+    key: str | None = None
+    pixel_arcmin: float | None = None
+    convention: str = "patch"
+    centres: Any = None
+    fields: tuple = ("Q", "U")
+    hdu: int = 1
+    nside: int | None = None
+    rotate_alms: bool = True
+    lmax: int | None = None
+    interpolation: str = "bilinear"
+    out: str | None = None
+    name: str = "posterior"
+    force: bool = False
+    batch_size: int = 64
+    device: str = "cpu"
+    quicklook_rows: int = 4
+    log_run: bool = True
+    experiment: str | None = "predictions"
+
+    @classmethod
+    def from_config(cls, node: Any) -> PredictOptions:
+        """Build from ``cfg.predict`` (a DictConfig or a mapping); refuse bad values."""
+        if node is None:
+            raise ValueError(
+                "the config has no 'predict' node; add `- predict: default` to the defaults of "
+                "conf/config.yaml (or pass +predict=default)"
+            )
+        if isinstance(node, DictConfig):
+            missing = sorted(OmegaConf.missing_keys(node))
+            if missing:
+                raise ValueError(
+                    "mandatory predict values are not set: "
+                    + ", ".join(f"predict.{k}" for k in missing)
+                    + " (give them as key=value overrides, e.g. predict.model=models:/NAME/1 "
+                    "predict.input=map.npy)"
+                )
+            plain = OmegaConf.to_container(node, resolve=True)
+        else:
+            plain = dict(node)
+        hp_node = dict(plain.pop("healpix", None) or {})
+        known = {
+            f
+            for f in cls.__dataclass_fields__
+            if f not in ("fields", "hdu", "nside", "rotate_alms", "lmax", "interpolation")
+        }
+        unknown = sorted(set(plain) - known)
+        if unknown:
+            raise ValueError(
+                f"unknown predict keys {unknown}; see conf/predict/default.yaml for the keys"
+            )
+        hp_known = {"fields", "hdu", "nside", "rotate_alms", "lmax", "interpolation"}
+        hp_unknown = sorted(set(hp_node) - hp_known)
+        if hp_unknown:
+            raise ValueError(
+                f"unknown predict.healpix keys {hp_unknown}; known: {sorted(hp_known)}"
+            )
+        for key in ("model", "input"):
+            if plain.get(key) in (None, "", "???"):
+                raise ValueError(f"predict.{key} is not set; give predict.{key}=...")
+        opts = cls(**plain, **hp_node)
+        opts._check()
+        return opts
+
+    def _check(self) -> None:
+        if self.format not in FORMATS:
+            raise ValueError(f"predict.format={self.format!r}; choose one of {FORMATS}")
+        if str(self.convention).upper() not in {c.upper() for c in CONVENTIONS}:
+            raise ValueError(f"predict.convention={self.convention!r}; choose one of {CONVENTIONS}")
+        if self.interpolation not in INTERPOLATIONS:
+            raise ValueError(
+                f"predict.healpix.interpolation={self.interpolation!r}; choose {INTERPOLATIONS}"
+            )
+        for key in ("batch_size", "quicklook_rows", "hdu"):
+            value = getattr(self, key)
+            if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+                prefix = "predict.healpix." if key == "hdu" else "predict."
+                raise ValueError(f"{prefix}{key} must be a positive integer, got {value!r}")
+        for key in ("nside", "lmax"):
+            value = getattr(self, key)
+            if value is not None and (isinstance(value, bool) or not isinstance(value, int)):
+                raise ValueError(f"predict.healpix.{key} must be an integer or null, got {value!r}")
+        for key in ("force", "log_run", "rotate_alms"):
+            if not isinstance(getattr(self, key), bool):
+                raise ValueError(f"predict.{key} must be true or false, got {getattr(self, key)!r}")
+
+
+@dataclass
+class PredictionResult:
+    """What :func:`run_prediction` produced.
+
+    Attributes
+    ----------
+    mean_eb, std_eb : ndarray, shape (m, 2, n, n), microkelvin
+        Posterior mean and standard deviation of E/B per patch.
+    data_qu : ndarray, shape (m, 2, n, n), microkelvin
+        The Q/U patches the model saw (patch frame).
+    patch : FlatPatch
+        The model's training geometry (that of every patch).
+    source : ModelSource
+    input : MapInput
+    centres : ndarray, shape (m, 2), degrees, or None
+    healpix_maps : ndarray, shape (4, 12 * nside**2), or None
+        MEAN_E, MEAN_B, STD_E, STD_B on the sphere (HEALPix input).
+    paths : dict of role to Path
+    provenance : dict
+    prediction_run_id : str or None
+        The MLflow run the prediction was logged to.
+    """
+
+    mean_eb: np.ndarray
+    std_eb: np.ndarray
+    data_qu: np.ndarray
+    patch: FlatPatch
+    source: ModelSource
+    input: MapInput
+    centres: np.ndarray | None = None
+    healpix_maps: np.ndarray | None = None
+    paths: dict = field(default_factory=dict)
+    provenance: dict = field(default_factory=dict)
+    prediction_run_id: str | None = None
+
+
+def cut_patches(
+    maps_qu: np.ndarray,
+    centres: np.ndarray,
+    patch: FlatPatch,
+    rotate_alms: bool = True,
+    lmax: int | None = None,
+) -> np.ndarray:
+    """Cut one Q/U patch per centre from a full-sky COSMO map (``maps.healpix.cut_patch``).
+
+    Returns
+    -------
+    ndarray, shape (k, 2, n, n), microkelvin, patch frame
+    """
+    from skymoments.maps.healpix import cut_patch
+
+    return np.stack(
+        [
+            cut_patch(maps_qu, lon, lat, patch, rotate_alms=rotate_alms, lmax=lmax)
+            for lon, lat in np.asarray(centres, dtype=float)
+        ]
+    )
+
+
+def _out_dir(opts: PredictOptions, default: str | os.PathLike | None) -> Path:
+    if opts.out not in (None, ""):
+        return Path(str(opts.out)).expanduser().absolute()
+    if default is not None:
+        return Path(default).absolute()
+    return Path.cwd()
+
+
+def _check_healpix(inp: MapInput, patch: FlatPatch, opts: PredictOptions) -> int:
+    """Checks of a HEALPix cut before any compute; returns the output nside."""
+    import healpy as hp
+
+    from skymoments.maps.healpix import check_nside, check_patch_fits
+
+    check_patch_fits(patch)
+    nside_out = inp.nside
+    if opts.nside is not None:
+        nside_out = check_nside(opts.nside, "predict.healpix.nside")
+    if opts.lmax is not None and not 2 <= opts.lmax <= 4 * inp.nside:
+        raise ValueError(
+            f"predict.healpix.lmax={opts.lmax} must lie in [2, {4 * inp.nside}] for an nside "
+            f"{inp.nside} map"
+        )
+    resol = hp.nside2resol(inp.nside, arcmin=True)
+    if resol > COARSE_MAP_FACTOR * patch.pixel_arcmin:
+        warnings.warn(
+            f"{inp.path} has {resol:.3g} arcmin HEALPix pixels, much coarser than the model's "
+            f"{patch.pixel_arcmin:g} arcmin patch pixels: the cut patches lack the small "
+            "scales the network was trained on",
+            RuntimeWarning,
+            stacklevel=3,
+        )
+    return int(nside_out)
+
+
+def _provenance(source: ModelSource, inp: MapInput, centres, nside_out) -> dict[str, Any]:
+    import skymoments
+
+    prov: dict[str, Any] = {
+        "model_ref": source.ref,
+        "model_uri": source.uri,
+        "model_name": source.name or "",
+        "model_version": source.version or "",
+        "model_run_id": source.run_id,
+        "input": str(inp.path.absolute()),
+        "input_sha256": inp.sha256,
+        "input_format": inp.kind,
+        "input_convention": inp.convention,
+        "npix": source.patch.npix,
+        "pixel_arcmin": source.patch.pixel_arcmin,
+        "eb_convention": "skymoments.maps.eb flat-sky E/B; rows north, columns east",
+        "created_utc": _dt.datetime.now(_dt.UTC).isoformat(timespec="seconds"),
+        "skymoments_version": getattr(skymoments, "__version__", ""),
+    }
+    if inp.pixel_source:
+        prov["pixel_source"] = inp.pixel_source
+    if inp.notes:
+        prov["input_notes"] = "; ".join(inp.notes)
+    if centres is not None:
+        prov["centres"] = [[float(a), float(b)] for a, b in centres]
+        prov["nside"] = int(inp.nside)
+        prov["nside_out"] = int(nside_out)
+    return prov
+
+
+def _device(name: str):
+    import torch
+
+    if name == "auto":
+        return torch.device("cuda" if torch.cuda.is_available() else "cpu")
+    try:
+        return torch.device(name)
+    except (RuntimeError, TypeError) as exc:
+        raise ValueError(
+            f"predict.device={name!r} is not a torch device (cpu, cuda, auto)"
+        ) from exc
+
+
+def _load(source: ModelSource, tracking: Any):
+    from skymoments.nets.posterior import PosteriorMoments
+
+    model = load_model(source.uri, tracking, map_location="cpu")
+    if not isinstance(model, PosteriorMoments):
+        raise ValueError(
+            f"{source.uri} is a {type(model).__name__}, not a skymoments PosteriorMoments; "
+            "predict needs a model logged by `skymoments run`"
+        )
+    return model
+
+
+def _prediction_tracking(cfg: DictConfig, opts: PredictOptions, source: ModelSource) -> Any:
+    """The tracking node of the prediction run: same store, experiment ``predict.experiment``."""
+    from skymoments.tracking import settings_from
+    from skymoments.tracking.store import client_for, with_retries
+
+    node = cfg.tracking
+    plain = (
+        OmegaConf.to_container(node, resolve=True) if isinstance(node, DictConfig) else dict(node)
+    )
+    experiment = opts.experiment
+    if experiment in (None, ""):
+        settings = settings_from(node)
+        client = client_for(settings)
+        experiment = with_retries(
+            settings,
+            "read the model's experiment",
+            lambda: client.get_experiment(source.experiment_id).name,
+        )
+    plain["experiment"] = str(experiment)
+    plain["register_as"] = None
+    return OmegaConf.create(plain)
+
+
+def _log_prediction(run, opts: PredictOptions, result: PredictionResult) -> None:
+    params = {f"predict.{k}": v for k, v in _plain_options(opts).items()}
+    params["patch.npix"] = result.patch.npix
+    params["patch.pixel_arcmin"] = result.patch.pixel_arcmin
+    run.log_params(params)
+    metrics = {}
+    for i, c in enumerate(("E", "B")):
+        metrics[f"predict/mean_rms_{c}"] = float(np.sqrt(np.mean(result.mean_eb[:, i] ** 2)))
+        metrics[f"predict/std_median_{c}"] = float(np.median(result.std_eb[:, i]))
+    metrics["predict/n_patches"] = float(len(result.mean_eb))
+    run.log_metrics(metrics)
+    for path in result.paths.values():
+        run.log_artifact(str(path), artifact_path="predict")
+
+
+def _plain_options(opts: PredictOptions) -> dict[str, Any]:
+    out = {}
+    for key in opts.__dataclass_fields__:
+        value = getattr(opts, key)
+        if isinstance(value, (ListConfig, list, tuple)):
+            value = str(list(value))
+        out[key] = value
+    return out
+
+
+def run_prediction(
+    cfg: DictConfig, default_out: str | os.PathLike | None = None
+) -> PredictionResult:
+    """Check, compute and write one prediction (module docstring for the order of work).
+
+    Parameters
+    ----------
+    cfg : DictConfig
+        The composed config: ``cfg.predict`` and ``cfg.tracking`` are read (``cfg.patch`` is
+        not: the geometry is the model's own).
+    default_out : path-like, optional
+        Output folder when ``predict.out`` is null (the command passes the Hydra job folder).
+
+    Returns
+    -------
+    PredictionResult
+
+    Raises
+    ------
+    ValueError
+        Every expected refusal, before compute: unset or bad options, an existing output
+        without ``predict.force``, an unknown model, a geometry that differs from the
+        model's training patch, NaN/inf, a missing Q/U column, an unknown convention or unit.
+    """
+    opts = PredictOptions.from_config(cfg.get("predict"))
+    input_path = Path(str(opts.input)).expanduser()
+    if not input_path.is_file():
+        raise ValueError(f"predict.input={opts.input!r}: no such file")
+    kind = detect_format(input_path) if opts.format == "auto" else opts.format
+    if kind != "healpix" and opts.centres is not None:
+        raise ValueError(
+            f"predict.centres is for HEALPix maps, but {input_path} is a flat {kind} input "
+            "whose patches are already cut; drop predict.centres"
+        )
+    centres = parse_centres(opts.centres) if kind == "healpix" else None
+    paths = output_paths(_out_dir(opts, default_out), opts.name, healpix=kind == "healpix")
+    check_outputs(paths, opts.force)
+
+    source = resolve_model_source(opts.model, cfg.tracking)
+    patch = source.patch
+    inp = read_input(
+        input_path,
+        kind,
+        key=opts.key,
+        pixel_arcmin=opts.pixel_arcmin,
+        convention=opts.convention,
+        healpix_fields=opts.fields,
+        healpix_hdu=opts.hdu,
+    )
+    label = f"model {source.uri} (run {source.run_id})"
+    nside_out = None
+    if kind == "healpix":
+        nside_out = _check_healpix(inp, patch, opts)
+    else:
+        check_patch_geometry(inp, patch, model=label)
+    device = _device(str(opts.device))
+
+    # --- compute, all checks passed ---------------------------------------------------
+    if kind == "healpix":
+        data = cut_patches(inp.maps_qu, centres, patch, opts.rotate_alms, opts.lmax)
+    else:
+        data = inp.data_qu
+    from skymoments.moments.pipeline import predict_moments
+
+    model = _load(source, cfg.tracking).to(device)
+    mean, std = predict_moments(model, data, batch_size=opts.batch_size, device=device)
+    hp_maps = None
+    if kind == "healpix":
+        hp_maps, _ = project_to_healpix(mean, std, centres, patch, nside_out, opts.interpolation)
+
+    prov = _provenance(source, inp, centres, nside_out)
+    result = PredictionResult(
+        mean_eb=mean,
+        std_eb=std,
+        data_qu=data,
+        patch=patch,
+        source=source,
+        input=inp,
+        centres=centres,
+        healpix_maps=hp_maps,
+        provenance=prov,
+    )
+    titles = (
+        [f"({lon:g}, {lat:g}) deg" for lon, lat in centres]
+        if centres is not None
+        else [f"patch {k}" for k in range(len(mean))]
+    )
+
+    from skymoments.predict.outputs import write_outputs
+
+    def write() -> None:
+        result.paths = write_outputs(
+            paths,
+            mean,
+            std,
+            patch,
+            result.provenance,
+            force=opts.force,
+            healpix_maps=hp_maps,
+            titles=titles,
+            quicklook_rows=opts.quicklook_rows,
+        )
+
+    if not opts.log_run:
+        write()
+        return result
+
+    from skymoments.tracking import tracked_run
+
+    tags = {
+        "skymoments.run_kind": "predict",
+        "skymoments.model_uri": source.uri,
+        "skymoments.model_ref": source.ref,
+        "skymoments.model_run_id": source.run_id,
+        "skymoments.model_version": source.version or "",
+        "skymoments.input": str(inp.path.absolute()),
+        "skymoments.input_sha256": inp.sha256,
+    }
+    with tracked_run(_prediction_tracking(cfg, opts, source), run_name="predict", tags=tags) as run:
+        result.prediction_run_id = run.run_id
+        result.provenance["prediction_run_id"] = run.run_id
+        write()
+        _log_prediction(run, opts, result)
+    return result
