@@ -1,0 +1,387 @@
+"""Synthesis of new maps from one training image by matching its WPH moments.
+
+We minimize ``||phi(x) - phi(x0)||^2`` over the pixels of a batch of maps ``x`` with
+L-BFGS (torch.optim.LBFGS, strong-Wolfe line search), ``phi`` the normalized WPH moments
+of :mod:`skymoments.synthesis.wph` and ``x0`` the training image. This is the
+"microcanonical" gradient-descent model of Bruna & Mallat (arXiv:1801.02013) as used
+with WPH moments by Zhang & Mallat 2021 (arXiv:1911.10017, Sec. 7) and Allys et al. 2020
+(arXiv:2006.06298, Sec. 4). The start is a Gaussian field with the target's 2-D power
+and Q-U cross power (below), so the optimization only has to add the non-Gaussian
+structure.
+
+The images of one batch are one optimization problem (the loss is their sum, the
+Hessian block-diagonal), solved by one L-BFGS; the moments and their gradients are
+evaluated on chunks of a few images so that the intermediate arrays stay in cache (a
+whole batch at once was slower per image: memory-bound).
+"""
+
+from __future__ import annotations
+
+import math
+import time
+import warnings
+from collections.abc import Callable
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+import torch
+
+from skymoments.synthesis.wavelets import check_bank_args
+from skymoments.synthesis.wph import WPHConfig, WPHStatistics, loss_per_image
+
+BOUNDARIES = ("periodic", "mirror", "apodize")
+# Edge-discontinuity ratio above which a training image is called non-periodic: the mean
+# squared jump across the wrap-around edges over the mean squared jump between interior
+# neighbours. A stationary periodic field gives ~1 (within ~30% for 64 pixels); a cut-out
+# of a red-spectrum field gives jumps as large as the field itself, >> 1.
+EDGE_RATIO_WARN = 4.0
+# L-BFGS iterations between checks of the stopping rule and progress reports.
+CHECK_EVERY = 10
+# Width of the cosine taper of boundary="apodize", as a fraction of the side.
+APODIZE_WIDTH = 0.15
+
+
+@dataclass(frozen=True)
+class SynthesisSettings:
+    """Everything that determines a synthesized bank (besides the image and the seed).
+
+    Parameters
+    ----------
+    n_images : int
+        Number of maps to synthesize (M).
+    J, L, delta_n, delta_j, delta_l : int
+        WPH statistics (:class:`skymoments.synthesis.wph.WPHConfig`).
+    max_iter : int
+        L-BFGS iteration cap per batch.
+    tol : float
+        Stop when the loss decreased by less than this fraction over the last
+        ``CHECK_EVERY`` (10) iterations.
+    batch : int
+        Maps optimized together in one L-BFGS problem.
+    boundary : {"periodic", "mirror", "apodize"}
+        How the training image's edges are treated (:func:`prepare_target`).
+    """
+
+    n_images: int = 16
+    J: int = 5
+    L: int = 4
+    delta_n: int = 1
+    delta_j: int = 2
+    delta_l: int = 1
+    max_iter: int = 200
+    tol: float = 1e-3
+    batch: int = 8
+    boundary: str = "periodic"
+
+    def wph_config(self) -> WPHConfig:
+        return WPHConfig(
+            J=self.J, L=self.L, delta_j=self.delta_j, delta_l=self.delta_l, delta_n=self.delta_n
+        )
+
+    def validate(self) -> None:
+        """Raise ValueError naming the bad setting."""
+        for name in ("n_images", "max_iter", "batch"):
+            v = getattr(self, name)
+            if isinstance(v, bool) or not isinstance(v, int | np.integer) or v < 1:
+                raise ValueError(f"synthesis.{name} must be a positive integer, got {v!r}")
+        if not (isinstance(self.tol, int | float) and 0 <= self.tol < 1):
+            raise ValueError(f"synthesis.tol must be a number in [0, 1), got {self.tol!r}")
+        if self.boundary not in BOUNDARIES:
+            raise ValueError(
+                f"synthesis.boundary must be one of {', '.join(BOUNDARIES)}, got {self.boundary!r}"
+            )
+
+    def as_dict(self) -> dict:
+        return asdict(self)
+
+
+@dataclass
+class SynthesisResult:
+    """Output of :func:`synthesize`.
+
+    Attributes
+    ----------
+    images : ndarray, shape (M, C, npix, npix), units of the training image
+    loss : ndarray, shape (M,)
+        Final ``||phi(x) - phi(x0)||^2`` per image (normalized moments, so dimensionless).
+    loss_initial : ndarray, shape (M,)
+        The same at the Gaussian start.
+    iterations : list of int
+        L-BFGS iterations run per batch.
+    seconds : float
+        Wall-clock time of the optimization (all batches).
+    n_moments : dict
+        Moment counts per family (:meth:`WPHStatistics.count`).
+    history : list of float
+        Mean loss per image at every check, all batches in turn.
+    """
+
+    images: np.ndarray
+    loss: np.ndarray
+    loss_initial: np.ndarray
+    iterations: list[int]
+    seconds: float
+    n_moments: dict
+    history: list[float] = field(default_factory=list)
+
+
+def check_image(image, J: int | None = None, L: int | None = None) -> np.ndarray:
+    """Validate a training image and return it as float64, shape (C, n, n).
+
+    Raises
+    ------
+    ValueError
+        Wrong shape, NaN/inf, a constant channel, a side below 2^J, or J/L out of range.
+    """
+    arr = np.asarray(image)
+    if arr.ndim == 2:
+        arr = arr[None]
+    if arr.ndim != 3 or arr.shape[0] not in (1, 2) or arr.shape[1] != arr.shape[2]:
+        raise ValueError(
+            f"training image has shape {arr.shape}; expected (2, n, n) for Q/U (or E/B), "
+            "or (n, n) for a scalar map, square"
+        )
+    if not np.issubdtype(arr.dtype, np.number) or np.iscomplexobj(arr):
+        raise ValueError(f"training image must be real numbers, got dtype {arr.dtype}")
+    arr = arr.astype(np.float64)
+    if not np.all(np.isfinite(arr)):
+        bad = int(arr.size - np.count_nonzero(np.isfinite(arr)))
+        raise ValueError(
+            f"training image contains {bad} NaN or infinite pixels; fill or inpaint them first"
+        )
+    std = arr.std(axis=(1, 2))
+    scale = max(float(np.abs(arr).max()), 1e-300)
+    if np.any(std <= 1e-12 * scale) or np.any(std == 0):
+        raise ValueError(
+            "training image is constant in channel(s) "
+            f"{[int(i) for i in np.nonzero(std <= 1e-12 * scale)[0]]}: there is nothing to "
+            "synthesize; check that the right map or field was read"
+        )
+    if J is not None or L is not None:
+        check_bank_args(arr.shape[1:], 1 if J is None else J, 2 if L is None else L)
+    return arr
+
+
+def edge_discontinuity(image: np.ndarray) -> float:
+    """Mean squared jump across the periodic edges over that between interior neighbours.
+
+    Parameters
+    ----------
+    image : ndarray, shape (C, n, n)
+
+    Returns
+    -------
+    float
+        ~1 for a periodic stationary field; >> 1 when the edges do not match.
+    """
+    x = np.asarray(image, dtype=float)
+    edge = np.concatenate(
+        [(x[:, 0, :] - x[:, -1, :]).ravel() ** 2, (x[:, :, 0] - x[:, :, -1]).ravel() ** 2]
+    )
+    inner = np.concatenate([np.diff(x, axis=1).ravel() ** 2, np.diff(x, axis=2).ravel() ** 2])
+    return float(edge.mean() / max(inner.mean(), 1e-300))
+
+
+def prepare_target(image: np.ndarray, boundary: str) -> np.ndarray:
+    """The periodic map whose moments the synthesis matches.
+
+    * ``periodic``: the image itself (warns when its edges look non-periodic).
+    * ``mirror``: the image reflected into a (C, 2n, 2n) periodic map; the synthesis then
+      runs at 2n and keeps the top-left n x n corner. A reflection flips the sign of U
+      (and of B) (REFERENCES.md, "Patch symmetries"), so channel 1 changes sign in the
+      reflected quadrants.
+    * ``apodize``: the image's fluctuation about its mean multiplied by a cosine taper of
+      width 0.15 of the side, then rescaled by ``1 / sqrt(mean(w^2))`` to restore its
+      variance. The taper's imprint on the moments is the price of this option.
+    """
+    if boundary not in BOUNDARIES:
+        raise ValueError(f"boundary must be one of {', '.join(BOUNDARIES)}, got {boundary!r}")
+    x = np.asarray(image, dtype=np.float64)
+    if boundary == "periodic":
+        ratio = edge_discontinuity(x)
+        if ratio > EDGE_RATIO_WARN:
+            warnings.warn(
+                f"the training image's edges look non-periodic (edge jumps {ratio:.1f}x the "
+                "interior ones); the synthesis assumes a periodic map and will add spurious "
+                "structure at the edges: set synthesis.boundary=mirror or apodize",
+                UserWarning,
+                stacklevel=3,
+            )
+        return x
+    if boundary == "mirror":
+        sign = np.ones((x.shape[0], 1, 1))
+        if x.shape[0] == 2:
+            sign[1] = -1.0
+        top = np.concatenate([x, sign * x[:, :, ::-1]], axis=2)
+        bottom = np.concatenate([sign * x[:, ::-1, :], x[:, ::-1, ::-1]], axis=2)
+        return np.concatenate([top, bottom], axis=1)
+    from skymoments.maps.spectra import apodization_window
+
+    w = apodization_window(x.shape[-1], width=APODIZE_WIDTH, kind="cosine")
+    mean = x.mean(axis=(1, 2), keepdims=True)
+    return mean + (x - mean) * w / np.sqrt(np.mean(w**2))
+
+
+def gaussian_start(target: np.ndarray, n: int, rng: np.random.Generator) -> np.ndarray:
+    """Gaussian maps with the target's 2-D auto and cross power, and its mean.
+
+    ``x_hat = x0_hat * z`` with ``z = fft2(g) / sqrt(N)`` for white noise ``g``: per Fourier
+    mode the same complex Gaussian factor multiplies every channel, so the 2-D power of
+    Q and U and their cross power (hence EE, BB and EB) are those of the target on
+    average, and ``z`` is Hermitian so the maps are real.
+
+    Parameters
+    ----------
+    target : ndarray, shape (C, n, n)
+    n : int
+    rng : numpy.random.Generator
+
+    Returns
+    -------
+    ndarray, shape (n, C, npix, npix)
+    """
+    c, ny, nx = target.shape
+    tf = np.fft.fft2(target)
+    z = np.fft.fft2(rng.standard_normal((n, 1, ny, nx))) / math.sqrt(ny * nx)
+    z[..., 0, 0] = 1.0  # keep the mean
+    return np.fft.ifft2(tf[None] * z).real
+
+
+ProgressFn = Callable[[dict], None]
+
+
+def synthesize(
+    image,
+    settings: SynthesisSettings,
+    seed: int | np.random.SeedSequence = 0,
+    progress: ProgressFn | None = None,
+    chunk: int = 2,
+    device=None,
+    dtype=torch.float32,
+) -> SynthesisResult:
+    """Synthesize ``settings.n_images`` maps with the WPH moments of one training image.
+
+    Parameters
+    ----------
+    image : ndarray, shape (C, n, n) with C = 1 or 2, any units (microkelvin for Q/U)
+    settings : SynthesisSettings
+    seed : int or numpy.random.SeedSequence
+        Seeds the Gaussian starts (the optimization itself is deterministic).
+    progress : callable, optional
+        Called with a dict (``batch``, ``n_batches``, ``iteration``, ``max_iter``,
+        ``loss`` = mean loss per image of the batch, ``images_done``, ``n_images``)
+        every 10 iterations and at the end of each batch.
+    chunk : int
+        Maps per evaluation of the moments inside a batch (memory, not results).
+    device, dtype
+        Torch device and dtype of the optimization.
+
+    Returns
+    -------
+    SynthesisResult
+    """
+    settings.validate()
+    x_img = check_image(image, settings.J, settings.L)
+    settings.wph_config().validate(x_img.shape[1:])
+    target = prepare_target(x_img, settings.boundary)
+    n = x_img.shape[-1]
+    # Work in units of the image's rms: float32 is then well conditioned whatever the unit.
+    scale = float(x_img.std())
+    t = target / scale
+    wph = WPHStatistics(t.shape[1:], settings.wph_config(), t.shape[0], t, device, dtype)
+    goal = wph.moments(t).detach()[0]
+    counts = wph.count()
+    rng = np.random.default_rng(seed)
+    n_batches = math.ceil(settings.n_images / settings.batch)
+    images, losses, losses0, iters, history = [], [], [], [], []
+    t0 = time.perf_counter()
+    for ib in range(n_batches):
+        b = min(settings.batch, settings.n_images - ib * settings.batch)
+        start = gaussian_start(t, b, rng)
+        x = torch.tensor(start, dtype=dtype, device=device, requires_grad=True)
+        last = {}
+
+        def closure(x=x, last=last, b=b):
+            x.grad = None
+            per = []
+            for c0 in range(0, b, chunk):
+                li = loss_per_image(wph.moments(x[c0 : c0 + chunk]), goal)
+                li.sum().backward()
+                per.append(li.detach())
+            per = torch.cat(per)
+            last["per"] = per
+            return per.sum()
+
+        opt = torch.optim.LBFGS(
+            [x],
+            lr=1.0,
+            max_iter=CHECK_EVERY,
+            history_size=20,
+            line_search_fn="strong_wolfe",
+            tolerance_grad=0.0,
+            tolerance_change=0.0,
+        )
+        with torch.no_grad():
+            l0 = loss_per_image(
+                torch.cat([wph.moments(x[c : c + chunk]) for c in range(0, b, chunk)]), goal
+            )
+        prev = float(l0.mean())
+        done = 0
+        while done < settings.max_iter:
+            opt.max_iter = min(CHECK_EVERY, settings.max_iter - done)
+            opt.param_groups[0]["max_iter"] = opt.max_iter
+            opt.param_groups[0]["max_eval"] = int(opt.max_iter * 1.25) + 1
+            opt.step(closure)
+            done += opt.max_iter
+            cur = float(last["per"].mean())
+            if not math.isfinite(cur):
+                raise FloatingPointError(
+                    "the synthesis loss became NaN or infinite; lower synthesis.J or check "
+                    "the training image"
+                )
+            history.append(cur)
+            if progress is not None:
+                progress(
+                    {
+                        "batch": ib,
+                        "n_batches": n_batches,
+                        "iteration": done,
+                        "max_iter": settings.max_iter,
+                        "loss": cur,
+                        "images_done": ib * settings.batch,
+                        "n_images": settings.n_images,
+                    }
+                )
+            if prev > 0 and (prev - cur) / prev < settings.tol:
+                break
+            prev = cur
+        with torch.no_grad():
+            lf = loss_per_image(
+                torch.cat([wph.moments(x[c : c + chunk]) for c in range(0, b, chunk)]), goal
+            )
+        out = x.detach().cpu().numpy().astype(np.float64) * scale
+        images.append(out[..., :n, :n])
+        losses.append(lf.cpu().numpy())
+        losses0.append(l0.cpu().numpy())
+        iters.append(done)
+    if progress is not None:
+        progress(
+            {
+                "batch": n_batches,
+                "n_batches": n_batches,
+                "iteration": iters[-1],
+                "max_iter": settings.max_iter,
+                "loss": float(np.mean(np.concatenate(losses))),
+                "images_done": settings.n_images,
+                "n_images": settings.n_images,
+            }
+        )
+    return SynthesisResult(
+        images=np.concatenate(images),
+        loss=np.concatenate(losses).astype(np.float64),
+        loss_initial=np.concatenate(losses0).astype(np.float64),
+        iterations=iters,
+        seconds=time.perf_counter() - t0,
+        n_moments=counts,
+        history=history,
+    )

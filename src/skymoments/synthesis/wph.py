@@ -1,0 +1,489 @@
+"""Wavelet phase harmonic (WPH) statistics of batches of one- or two-channel maps, in torch.
+
+Phase harmonics. For a complex wavelet coefficient ``z = (x * psi_lambda)(u)`` the phase
+harmonic of order ``k`` is ``[z]^k = |z| exp(i k arg z)`` (Mallat, Zhang & Rochette 2018,
+arXiv:1810.12136, eq. 1), so ``[z]^0 = |z|`` and ``[z]^1 = z``. Raising the phase to the
+power ``k`` moves the frequency of a coarse-scale coefficient up by ``k``, which makes
+coefficients of different scales correlated when the field has coherent structures.
+
+Moments. Each statistic is a covariance of two phase-harmonic maps at a spatial shift
+``tau`` (Zhang & Mallat 2021, arXiv:1911.10017, eq. 5; Allys et al. 2020, arXiv:2006.06298,
+Sec. 3),
+
+    M(tau) = < conj([x_a * psi_1]^k1(u) - mean) ([x_b * psi_2]^k2(u + tau) - mean) >_u,
+
+for channels ``a, b`` (Q and U, or E and B). The families (index sets following Allys et
+al. 2020, Sec. 3.2, and Regaldo-Saint Blancard et al., arXiv:2102.03160, Sec. 3) are
+
+* ``S11``: k1 = k2 = 1, same wavelet: the power spectrum at the wavelet's resolution,
+  with shifts ``tau`` (below) for finer spectral detail;
+* ``S00``: k1 = k2 = 0, same wavelet: correlations of the envelopes (sparsity);
+* ``S01``: k1 = 0, k2 = 1, same wavelet: envelope-coefficient correlation;
+* ``C01``: k1 = 0 at ``j1``, k2 = 1 at ``j1 < j2 <= j1 + delta_j``, orientations within
+  ``delta_l`` steps, tau = 0;
+* ``Cphase``: k1 = 1 at ``j1``, k2 = 2^(j2 - j1) at ``j2 = j1 + 1 .. j1 + delta_j``, same
+  orientation, tau = 0: the phase alignment across scales;
+* ``L``: scaling-function moments: the channel means and the covariance of the
+  low-passed maps;
+* ``P`` (our addition, off with ``spectrum_bins=0``): the power in ``n // 4`` linear
+  annuli of ``|w|`` (the project's default spectrum bins, ``FlatPatch.default_bin_edges``)
+  of E, B and E x B for two channels (of the map for one). ``S11`` pins the spectrum
+  only at the wavelets' dyadic resolution (plus shifts); a per-bin spectrum within a few
+  percent needs these finer second-order moments. E/B follow ``maps/eb.py``'s convention.
+
+For two channels every family is computed for all channel pairs (Q-Q, U-U, Q-U and, for the
+non-symmetric families, U-Q), which keeps the QQ, UU and QU power, hence EE, BB and EB, and
+the dependence between Q and U.
+
+Shifts. ``tau = 2^j v`` for integer vectors ``|v| <= delta_n`` (the shift grows with the
+wavelet's size, as in arXiv:2006.06298, Sec. 3.2), dropping those that reach half the map.
+For an auto-covariance ``M(-tau) = conj(M(tau))``, so only a half plane of ``v`` is used
+there; cross-covariances take the full disk.
+
+Normalization. Every moment is divided by ``sigma_1 sigma_2``, the standard deviations of
+the two phase-harmonic maps measured once on the reference (target) image: sqrt<|W|^2> for
+``k >= 1`` and std(|W|) for ``k = 0`` (arXiv:2102.03160, Sec. 3.3). The target's moments
+are then correlation coefficients of order one, whatever the scale, so that no scale or
+family dominates the loss.
+
+Computation. Moments with shifts are evaluated in Fourier space: with ``A_hat = fft2(A)``,
+``M(tau) = N^-2 sum_w conj(A_hat(w)) B_hat(w) exp(i w.tau)`` (Parseval), a matrix product
+with a small table of phases. ``S11`` needs no FFT beyond ``x_hat`` since
+``conj(W_a_hat) W_b_hat = conj(x_a_hat) x_b_hat psi_hat^2``. The tau = 0 families are means
+of products in pixel space. The work is done scale by scale, so no stack of phase
+harmonics for all pairs is ever materialized; :class:`WPHStatistics` works on any batch,
+and the synthesis calls it on chunks of a few images.
+
+Symmetries (tested): the moments are exactly invariant under whole-pixel translations of
+a periodic map. Under a 180-degree rotation ``x(u) -> x(-u)``, ``W(u) -> conj(W(-u))``
+(``psi_hat`` is real), so ``M(tau) -> conj(M(-tau))``: auto-covariances over the half
+plane (``S11``, ``S00`` for a = b) are invariant, the others map to the complex conjugate
+at the opposite shift (see :meth:`WPHStatistics.rotate180`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import torch
+
+from skymoments.synthesis.wavelets import WaveletBank, check_bank_args, wavelet_bank
+
+FAMILIES = ("S11", "S00", "S01", "C01", "Cphase", "L", "P")
+# |z| below this (relative to the map's unit) has no meaningful phase; the phase harmonic
+# of order k >= 2 is evaluated with |z| clamped there (its value there is ~0 anyway).
+_TINY = 1e-30
+
+
+@dataclass(frozen=True)
+class WPHConfig:
+    """Index sets of the WPH statistics.
+
+    Parameters
+    ----------
+    J : int
+        Dyadic scales (``2^J <= npix``).
+    L : int
+        Orientations over ``[0, pi)`` (2..16).
+    delta_j : int
+        Largest scale separation in ``C01`` and ``Cphase`` (>= 0; 0 disables them).
+    delta_l : int
+        Largest orientation offset, in steps of ``pi / L``, in ``C01`` (0 <= delta_l < L).
+    delta_n : int
+        Largest shift vector length ``|v|`` for ``S11``, ``S00``, ``S01`` (>= 0).
+    full_angle : bool
+        Orientations over ``[0, 2 pi)`` instead of ``[0, pi)``.
+    spectrum_bins : int or None
+        Annuli of the ``P`` family; None means ``npix // 4``, 0 turns the family off.
+    """
+
+    J: int = 4
+    L: int = 8
+    delta_j: int = 2
+    delta_l: int = 1
+    delta_n: int = 1
+    full_angle: bool = False
+    spectrum_bins: int | None = None
+
+    def validate(self, shape: tuple[int, int]) -> None:
+        check_bank_args(shape, self.J, self.L)
+        for name in ("delta_j", "delta_l", "delta_n"):
+            v = getattr(self, name)
+            if not isinstance(v, int | np.integer) or v < 0:
+                raise ValueError(f"{name} must be a non-negative integer, got {v!r}")
+        if self.delta_j >= self.J and self.J > 1:
+            raise ValueError(f"delta_j = {self.delta_j} must be below J = {self.J}")
+        if self.delta_l >= self.L:
+            raise ValueError(f"delta_l = {self.delta_l} must be below L = {self.L}")
+        if self.spectrum_bins is not None and (
+            not isinstance(self.spectrum_bins, int | np.integer) or self.spectrum_bins < 0
+        ):
+            raise ValueError(
+                f"spectrum_bins must be None or an integer >= 0, got {self.spectrum_bins!r}"
+            )
+        if self.delta_n > 4:
+            raise ValueError(f"delta_n = {self.delta_n} is too large; use 0..4 (shifts 2^j v)")
+
+
+def _shift_vectors(delta_n: int, half: bool) -> np.ndarray:
+    """Integer vectors ``(vy, vx)`` with ``|v| <= delta_n``, zero first; a half plane if asked."""
+    out = [(0, 0)]
+    for vy in range(-delta_n, delta_n + 1):
+        for vx in range(-delta_n, delta_n + 1):
+            if (vy, vx) == (0, 0) or vy * vy + vx * vx > delta_n * delta_n:
+                continue
+            if half and not (vy > 0 or (vy == 0 and vx > 0)):
+                continue
+            out.append((vy, vx))
+    return np.array(out, dtype=int)
+
+
+class WPHStatistics:
+    """WPH moments of maps of a fixed shape, normalized by a reference map.
+
+    Parameters
+    ----------
+    shape : (int, int)
+        Map shape ``(npix, npix)``.
+    config : WPHConfig
+    channels : int
+        1 (a scalar map) or 2 (Q, U or E, B).
+    reference : ndarray or Tensor, shape (channels, npix, npix), optional
+        The map whose own moments set the normalization (the target). Without it the
+        normalization is 1 (raw moments) until :meth:`set_reference` is called.
+    device, dtype
+        Torch device and real dtype (float32 for synthesis, float64 for gradient checks).
+    """
+
+    def __init__(
+        self,
+        shape: tuple[int, int],
+        config: WPHConfig,
+        channels: int = 2,
+        reference=None,
+        device=None,
+        dtype=torch.float32,
+    ):
+        shape = (int(shape[0]), int(shape[1]))
+        config.validate(shape)
+        if channels not in (1, 2):
+            raise ValueError(f"channels must be 1 or 2, got {channels!r}")
+        self.shape, self.config, self.channels = shape, config, channels
+        self.device, self.dtype = device, dtype
+        self.cdtype = torch.complex128 if dtype == torch.float64 else torch.complex64
+        self.bank: WaveletBank = wavelet_bank(shape, config.J, config.L, config.full_angle)
+        psi, phi = self.bank.torch_filters(device, dtype)
+        self.psi, self.phi = psi, phi  # (J, T, ny, nx), (ny, nx)
+        self.n_theta = self.bank.n_theta
+        self.npix = shape[0] * shape[1]
+        # Channel pairs: symmetric families (a <= b) and ordered ones (all a, b).
+        c = channels
+        self.sym_pairs = [(a, b) for a in range(c) for b in range(a, c)]
+        self.all_pairs = [(a, b) for a in range(c) for b in range(c)]
+        self._build_shift_tables()
+        self.norm0 = torch.ones(c, config.J, self.n_theta, dtype=dtype, device=device)
+        self.norm1 = torch.ones_like(self.norm0)
+        self.norm_low = torch.ones(c, dtype=dtype, device=device)
+        self.norm_mean = torch.ones(c, dtype=dtype, device=device)
+        self.norm_spec = None
+        if reference is not None:
+            self.set_reference(reference)
+
+    # ------------------------------------------------------------------ set-up
+    def _build_shift_tables(self) -> None:
+        ny, nx = self.shape
+        wy = torch.as_tensor(2 * np.pi * np.fft.fftfreq(ny), dtype=torch.float64)
+        wx = torch.as_tensor(2 * np.pi * np.fft.fftfreq(nx), dtype=torch.float64)
+        wy, wx = torch.meshgrid(wy, wx, indexing="ij")
+        self.shifts_half: list[np.ndarray] = []
+        self.shifts_full: list[np.ndarray] = []
+        self.phase_half: list[torch.Tensor] = []  # per j: (N, T_half) complex
+        self.phase_full: list[torch.Tensor] = []
+        self.s11_kernel_half: list[torch.Tensor] = []  # per j: (N, n_theta * T_half)
+        self.s11_kernel_full: list[torch.Tensor] = []
+        self.neg_full: list[np.ndarray] = []  # index of -tau in the full list
+        lim = min(ny, nx) // 2
+        for j in range(self.config.J):
+            for half, shifts, phases, kern in (
+                (True, self.shifts_half, self.phase_half, self.s11_kernel_half),
+                (False, self.shifts_full, self.phase_full, self.s11_kernel_full),
+            ):
+                tau = _shift_vectors(self.config.delta_n, half) * 2**j
+                tau = tau[np.abs(tau).max(axis=1) < lim]
+                shifts.append(tau)
+                ph = torch.exp(
+                    1j * (wy.reshape(-1, 1) * tau[:, 0] + wx.reshape(-1, 1) * tau[:, 1])
+                ) / (self.npix**2)
+                phases.append(ph.to(self.cdtype).to(self.device))
+                psi2 = self.psi[j].to(torch.float64).reshape(self.n_theta, -1) ** 2  # (T, N)
+                k = psi2.T[:, :, None] * ph[:, None, :]  # (N, T, n_tau)
+                kern.append(k.reshape(self.npix, -1).to(self.cdtype).to(self.device))
+                if not half:
+                    index = {tuple(t): i for i, t in enumerate(tau.tolist())}
+                    self.neg_full.append(np.array([index[(-a, -b)] for a, b in tau.tolist()]))
+        self.s11_kernel_half_all = torch.cat(self.s11_kernel_half, dim=1)
+        self.s11_kernel_full_all = torch.cat(self.s11_kernel_full, dim=1)
+        # P family: annulus indicator matrix (N, n_bins) divided by the mode count, and
+        # the E/B rotation cos 2phi, sin 2phi of maps/eb.py (phi = atan2(w_y, w_x)).
+        nb = self.config.spectrum_bins
+        nb = min(ny, nx) // 4 if nb is None else nb
+        r = torch.sqrt(wy**2 + wx**2).reshape(-1)
+        edges = torch.linspace(0.5 * 2 * np.pi / min(ny, nx), np.pi, nb + 1, dtype=torch.float64)
+        self.n_spectrum_bins = nb
+        if nb:
+            idx = torch.bucketize(r, edges, right=True) - 1
+            ind = torch.zeros(self.npix, nb, dtype=torch.float64)
+            ok = (idx >= 0) & (idx < nb)
+            ind[torch.nonzero(ok)[:, 0], idx[ok]] = 1.0
+            ind = ind / ind.sum(dim=0).clamp_min(1.0)
+            self.bin_matrix = ind.to(self.dtype).to(self.device)
+            ang = torch.atan2(wy, wx).reshape(-1)
+            self.cos2 = torch.cos(2 * ang).to(self.dtype).to(self.device)
+            self.sin2 = torch.sin(2 * ang).to(self.dtype).to(self.device)
+
+    def _as_tensor(self, x) -> torch.Tensor:
+        x = torch.as_tensor(x, dtype=self.dtype, device=self.device)
+        if x.ndim == 3:
+            x = x[None]
+        if x.ndim != 4 or tuple(x.shape[1:]) != (self.channels, *self.shape):
+            raise ValueError(
+                f"maps have shape {tuple(x.shape)}, expected (batch, {self.channels}, "
+                f"{self.shape[0]}, {self.shape[1]})"
+            )
+        return x
+
+    @torch.no_grad()
+    def set_reference(self, reference) -> None:
+        """Set the per-channel, per-wavelet normalization from a reference map.
+
+        Parameters
+        ----------
+        reference : ndarray or Tensor, shape (channels, npix, npix)
+        """
+        x = self._as_tensor(reference)
+        if x.shape[0] != 1:
+            raise ValueError("the reference must be one map, shape (channels, npix, npix)")
+        _, w, _ = self._transform(x)
+        mod = w.abs()
+        self.norm1 = mod.pow(2).mean(dim=(-2, -1)).sqrt()[0]
+        self.norm0 = mod.std(dim=(-2, -1), unbiased=False)[0]
+        low = torch.fft.ifft2(torch.fft.fft2(x) * self.phi).real
+        self.norm_low = low.std(dim=(-2, -1), unbiased=False)[0]
+        self.norm_mean = x.std(dim=(-2, -1), unbiased=False)[0]
+        self.norm_spec = None
+        if self.n_spectrum_bins:
+            raw = self._spectrum(torch.fft.fft2(x).reshape(1, x.shape[1], -1))[0]
+            if x.shape[1] == 2:
+                # EB is normalized by sqrt(EE BB): it can be ~0 itself.
+                raw[2] = torch.sqrt(raw[0] * raw[1])
+            # An empty or powerless annulus (a tiny map) must not divide by zero.
+            self.norm_spec = torch.clamp(raw, min=float(raw.max()) * 1e-8)
+        for name in ("norm0", "norm1", "norm_low", "norm_mean"):
+            t = getattr(self, name)
+            floor = t.max() * 1e-6
+            if not torch.all(t > 0):
+                raise ValueError(
+                    "the reference map has no power in some wavelet band or channel "
+                    "(a constant image?); give a map with structure on all scales"
+                )
+            setattr(self, name, torch.clamp(t, min=floor))
+
+    # ------------------------------------------------------------------ core
+    def _spectrum(self, xflat: torch.Tensor) -> torch.Tensor:
+        """Binned power (b, 3, n_bins): EE, BB, EB for two channels; (b, 1, n_bins) for one."""
+        if xflat.shape[1] == 1:
+            return (xflat.real**2 + xflat.imag**2) @ self.bin_matrix
+        q, u = xflat[:, 0], xflat[:, 1]
+        e = q * self.cos2 + u * self.sin2
+        bm = -q * self.sin2 + u * self.cos2
+        ee = e.real**2 + e.imag**2
+        bb = bm.real**2 + bm.imag**2
+        eb = e.real * bm.real + e.imag * bm.imag
+        return torch.stack([ee, bb, eb], dim=1) @ self.bin_matrix
+
+    def _transform(self, x: torch.Tensor):
+        """``x_hat`` (b, C, ny, nx), wavelet coefficients W (b, C, J, T, ny, nx), W_hat."""
+        xf = torch.fft.fft2(x.to(self.dtype))
+        wf = xf[:, :, None, None] * self.psi
+        w = torch.fft.ifft2(wf)
+        return xf, w, wf
+
+    def __call__(self, x) -> dict[str, list[torch.Tensor]]:
+        return self.forward(x)
+
+    def forward(self, x) -> dict[str, list[torch.Tensor]]:
+        """Normalized WPH moments of a batch of maps.
+
+        Parameters
+        ----------
+        x : Tensor or ndarray, shape (b, channels, npix, npix), float
+            Differentiable when a tensor with ``requires_grad``.
+
+        Returns
+        -------
+        dict family -> list of complex Tensors
+            One entry per family of :data:`FAMILIES`, each a list of blocks of shape
+            (b, ...) whose last axis is the shift where the family has shifts;
+            :meth:`flatten` concatenates them into (b, n_moments), :meth:`rotate180`
+            knows their layout.
+        """
+        x = self._as_tensor(x)
+        b, c = x.shape[:2]
+        cfg, n, nt = self.config, self.npix, self.n_theta
+        xf, w, wf = self._transform(x)
+        out: dict[str, list[torch.Tensor]] = {f: [] for f in FAMILIES}
+        tags: dict[str, list] = {f: [] for f in FAMILIES}
+        n0, n1 = self.norm0, self.norm1  # (C, J, T)
+        xflat = xf.reshape(b, c, n)
+        # S11 for all scales at once from the cross-spectra of x:
+        # conj(W_a_hat) W_b_hat = conj(x_a_hat) x_b_hat psi_hat^2.
+        auto = (xflat.real**2 + xflat.imag**2).to(self.cdtype)  # (b, C, N)
+        s_auto = auto @ self.s11_kernel_half_all  # (b, C, sum_j T n_tau_j)
+        s_cross = None
+        if c == 2:
+            s_cross = (torch.conj(xflat[:, :1]) * xflat[:, 1:]) @ self.s11_kernel_full_all
+        # Phase-harmonic maps of order 0, mean removed (only their covariances enter).
+        mod = w.abs()
+        mod0 = mod - mod.mean(dim=(-2, -1), keepdim=True)
+        m0f = torch.fft.fft2(mod0).reshape(b, c, cfg.J, nt, n)
+        wflat = wf.reshape(b, c, cfg.J, nt, n)
+        oh, of = 0, 0
+        for j in range(cfg.J):
+            th, tf = len(self.shifts_half[j]), len(self.shifts_full[j])
+            blk = s_auto[..., oh : oh + nt * th].reshape(b, c, nt, th)
+            out["S11"].append(blk / (n1[:, j] ** 2)[None, :, :, None])
+            tags["S11"].append("inv")
+            if s_cross is not None:
+                blk = s_cross[..., of : of + nt * tf].reshape(b, 1, nt, tf)
+                out["S11"].append(blk / (n1[0, j] * n1[1, j])[None, None, :, None])
+                tags["S11"].append(("neg", j))
+            oh, of = oh + nt * th, of + nt * tf
+            mj = m0f[:, :, j]  # (b, C, T, N)
+            p = (mj.real**2 + mj.imag**2).to(self.cdtype)
+            blk = p @ self.phase_half[j]
+            out["S00"].append(blk / (n0[:, j] ** 2)[None, :, :, None])
+            tags["S00"].append("inv")
+            if c == 2:
+                blk = (torch.conj(mj[:, :1]) * mj[:, 1:]) @ self.phase_full[j]
+                out["S00"].append(blk / (n0[0, j] * n0[1, j])[None, None, :, None])
+                tags["S00"].append(("neg", j))
+            # S01 for every ordered channel pair (a, b): conj(|W_a| hat) W_b hat.
+            prod = torch.conj(mj)[:, :, None] * wflat[:, None, :, j]  # (b, C, C, T, N)
+            blk = prod @ self.phase_full[j]
+            norm = n0[:, None, j] * n1[None, :, j]  # (C, C, T)
+            out["S01"].append(blk / norm[None, :, :, :, None])
+            tags["S01"].append(("neg", j))
+        # Cross-scale families at tau = 0, one scale offset at a time, as matrix products
+        # over pixels of all (channel, orientation) pairs at once (cheaper on a CPU than
+        # gathering the few pairs we keep one by one).
+        shp = (b, c, cfg.J, nt, n)
+        modr = mod0.reshape(shp).permute(0, 2, 1, 3, 4).reshape(b, cfg.J, c * nt, n)
+        wr = w.reshape(shp).permute(0, 2, 1, 3, 4).reshape(b, cfg.J, c * nt, n)
+        tt = np.arange(nt)
+        for dj in range(1, cfg.delta_j + 1):
+            if dj >= cfg.J:
+                break
+            jn = cfg.J - dj
+            # C01: <(|W_j1| - mean) W_j2> for all (a, t1) x (b, t2).
+            w2 = wr[:, dj:]
+            full_re = (modr[:, :jn] @ w2.real.transpose(-1, -2)).reshape(b, jn, c, nt, c, nt)
+            full_im = (modr[:, :jn] @ w2.imag.transpose(-1, -2)).reshape(b, jn, c, nt, c, nt)
+            for dl in range(-cfg.delta_l, cfg.delta_l + 1):
+                t2 = (tt + dl) % nt
+                re = full_re[:, :, :, tt, :, t2]  # (T, b, jn, C, C)
+                im = full_im[:, :, :, tt, :, t2]
+                if not cfg.full_angle:
+                    # Index t + L is the wavelet turned by pi: conj(W_t) for a real map.
+                    wrapped = torch.as_tensor((tt + dl < 0) | (tt + dl >= nt), device=im.device)
+                    im = torch.where(wrapped[:, None, None, None, None], -im, im)
+                m = torch.complex(re, im).permute(1, 3, 4, 2, 0) / n  # (b, C, C, jn, T)
+                norm = n0[:, None, :jn, :] * n1[None, :, dj:, :][..., t2]
+                out["C01"].append(m / norm)
+                tags["C01"].append("conj")
+            # Cphase: [W_j2]^(2^dj) has the frequency of W_j1 (arXiv:1810.12136, Sec. 4);
+            # the phase is raised to 2^dj by repeated squaring (complex pow is slow).
+            w2 = w[:, :, dj:]
+            r = w2.abs().clamp_min(_TINY)
+            ph = w2 / r
+            for _ in range(dj):
+                ph = ph * ph
+            harm = (r * ph).reshape(b, c, jn, nt, n)
+            w1 = w[:, :, :jn].reshape(b, c, jn, nt, n)
+            m = torch.einsum("bajtn,bcjtn->bacjt", torch.conj(w1), harm) / n
+            norm = n1[:, None, :jn] * n1[None, :, dj:]
+            out["Cphase"].append(m / norm)
+            tags["Cphase"].append("conj")
+        # Scaling-function moments: channel means and low-pass covariances.
+        mean = x.mean(dim=(-2, -1))
+        out["L"].append((mean / self.norm_mean).to(self.cdtype))
+        low = torch.fft.ifft2(xf * self.phi).real
+        low = low - low.mean(dim=(-2, -1), keepdim=True)
+        sa = [p[0] for p in self.sym_pairs]
+        sb = [p[1] for p in self.sym_pairs]
+        cov = (low[:, sa] * low[:, sb]).mean(dim=(-2, -1))
+        out["L"].append((cov / (self.norm_low[sa] * self.norm_low[sb])).to(self.cdtype))
+        tags["L"] += ["inv", "inv"]
+        if self.n_spectrum_bins:
+            spec = self._spectrum(xflat)
+            if self.norm_spec is not None:
+                spec = spec / self.norm_spec
+            out["P"].append(spec.to(self.cdtype))
+            tags["P"].append("inv")
+        self._tags = tags
+        return out
+
+    # ------------------------------------------------------------------ helpers
+    def flatten(self, stats: dict[str, list[torch.Tensor]]) -> torch.Tensor:
+        """All moments of :meth:`forward` as one complex tensor, shape (b, n_moments)."""
+        b = stats["L"][0].shape[0]
+        return torch.cat([t.reshape(b, -1) for f in FAMILIES for t in stats[f]], dim=1)
+
+    def moments(self, x) -> torch.Tensor:
+        """``flatten(forward(x))``: complex Tensor, shape (b, n_moments)."""
+        return self.flatten(self.forward(x))
+
+    def count(self) -> dict[str, int]:
+        """Number of complex moments per family, and ``total``, for this configuration."""
+        probe = torch.zeros(1, self.channels, *self.shape, dtype=self.dtype, device=self.device)
+        with torch.no_grad():
+            stats = self.forward(probe)  # any map will do: only the shapes are used
+        out = {f: int(sum(t[0].numel() for t in stats[f])) for f in FAMILIES}
+        out["total"] = int(sum(out.values()))
+        return out
+
+    def rotate180(self, stats: dict[str, list[torch.Tensor]]) -> dict[str, list[torch.Tensor]]:
+        """The moments that the 180-degree rotated map must have, given those of the map.
+
+        ``M(tau) -> conj(M(-tau))`` (module docstring). Auto-covariances over a half plane
+        of shifts are their own conjugate at ``-tau`` and stay as they are; tau = 0
+        cross-scale moments become their conjugates.
+        """
+        out: dict[str, list[torch.Tensor]] = {}
+        for f, parts in stats.items():
+            new = []
+            for t, tag in zip(parts, self._tags[f], strict=True):
+                if tag == "inv":
+                    new.append(t)
+                elif tag == "conj":
+                    new.append(torch.conj(t))
+                else:
+                    new.append(torch.conj(t[..., self.neg_full[tag[1]]]))
+            out[f] = new
+        return out
+
+
+def loss_per_image(stats: torch.Tensor, target: torch.Tensor) -> torch.Tensor:
+    """``||phi(x) - phi(x0)||^2`` per image.
+
+    Parameters
+    ----------
+    stats : complex Tensor, shape (b, n_moments)
+    target : complex Tensor, shape (n_moments,) or (1, n_moments)
+
+    Returns
+    -------
+    Tensor, shape (b,), real
+    """
+    d = stats - target.reshape(1, -1)
+    return (d.real**2 + d.imag**2).sum(dim=1)
