@@ -64,9 +64,36 @@ def test_smoke_run_is_finished_with_named_metrics_and_artifacts(tmp_path):
     paths = _artifact_paths(client, run.info.run_id)
     for path in NAMED_ARTIFACTS:
         assert path in paths, (path, sorted(paths))
-    assert any(p.startswith("model/") for p in paths)
+    _check_model_reloads(client, run, root, tmp_path)
     assert "mlflow ui --backend-store-uri" in proc.stdout
     assert run.info.run_id in proc.stdout
+
+
+def _check_model_reloads(client, run, root, tmp_path):
+    # The logged model, reloaded through MLflow, reproduces the posterior the run wrote for
+    # its evaluation maps (regenerated here from the same config and seed stream).
+    import numpy as np
+    from hydra import compose, initialize_config_dir
+
+    from skymoments.calibration.report import read_posterior
+    from skymoments.config import conf_dir
+    from skymoments.moments.pipeline import predict_moments
+    from skymoments.sky.build import scenario_from_config
+    from skymoments.sky.seeds import streams
+    from skymoments.tracking import download_artifact, load_model
+
+    with initialize_config_dir(config_dir=str(conf_dir()), version_base="1.3"):
+        cfg = compose("config", overrides=["experiment=smoke"])
+    scenario = scenario_from_config(cfg)
+    test = scenario.draw_components(streams(int(cfg.seed), "eval")["eval"], int(cfg.train.n_val))
+    model = load_model(run.info.run_id, f"sqlite:///{root / 'mlflow.db'}")
+    mean, std = predict_moments(model, test["data_qu"])
+    logged = download_artifact(f"sqlite:///{root / 'mlflow.db'}", run.info.run_id,
+                               "maps/posterior.npz", tmp_path / "dl")
+    mean0, std0, _, _ = read_posterior(logged)
+    # Same float32 network on the same inputs: equal up to float32 round-off.
+    np.testing.assert_allclose(mean, mean0, rtol=1e-4, atol=1e-4 * np.abs(mean0).max())
+    np.testing.assert_allclose(std, std0, rtol=1e-4, atol=1e-4 * std0.max())
 
 
 @pytest.mark.slow

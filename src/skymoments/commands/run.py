@@ -160,9 +160,8 @@ def save_arrays(path: Path, arrays: dict, truth, mean, std) -> Path:
 def main(cfg: DictConfig) -> float | None:
     from skymoments.tracking import print_run_summary, run_job_safely, tracked_run
 
-    validate(cfg)
-
     def job(cfg: DictConfig) -> float:
+        validate(cfg, command="run")
         with tracked_run(cfg, run_name=str(cfg.name)) as run:
             run.log_config(cfg)
             metrics = run_study(cfg, run)

@@ -34,6 +34,8 @@ class CMBSchema:
     ns: float = 0.965
     tau: float = 0.06
     lmax: int = 5000
+    nt: float = 0.0
+    lmax_tensor: int = 1500
 
 
 @dataclass
@@ -159,15 +161,29 @@ def _check_tracking(cfg: DictConfig) -> None:
 CHECKS = (_check_patch, _check_sky, _check_prior, _check_model, _check_train, _check_tracking)
 
 
-def validate(cfg: DictConfig) -> DictConfig:
+# Nodes that belong to one subcommand: their mandatory keys are checked only by it.
+COMMAND_NODES = ("predict", "compare", "synthesis", "evaluate")
+
+
+def validate(cfg: DictConfig, command: str | None = None) -> DictConfig:
     """Check a composed config before any work; raise :class:`ConfigError` naming the key.
+
+    Parameters
+    ----------
+    cfg : DictConfig
+    command : str, optional
+        The subcommand being run; the mandatory (``???``) keys of its own node are
+        checked, those of other subcommands' nodes are not.
 
     Returns the same config, so ``cfg = validate(cfg)`` reads naturally.
     """
     for key in ("patch", "sky", "prior"):
         if key not in cfg:
             raise ConfigError(f"the config has no '{key}' node; compose it from conf/config.yaml")
-    missing = OmegaConf.missing_keys(cfg)
+    missing = {
+        key for key in OmegaConf.missing_keys(cfg)
+        if key.split(".")[0] not in COMMAND_NODES or key.split(".")[0] == command
+    }
     if missing:
         raise ConfigError(
             "mandatory config values are not set: " + ", ".join(sorted(missing))
