@@ -3,12 +3,39 @@
 from __future__ import annotations
 
 import functools
+import logging
+import warnings
 from collections.abc import Callable
 
 import hydra
 from omegaconf import DictConfig
 
 from skymoments.config import conf_dir
+
+
+# Third-party chatter that buries our own output: Lightning's start-up banners and tips,
+# MLflow's note on pickled models (we pickle on purpose: DEVELOPERS.md, Tracking).
+QUIET_LOGGERS = {
+    "lightning.pytorch.utilities.rank_zero": logging.WARNING,
+    "lightning.fabric.utilities.rank_zero": logging.WARNING,
+    "lightning.pytorch.accelerators.cuda": logging.WARNING,
+    "mlflow.pytorch": logging.ERROR,
+    "alembic": logging.WARNING,
+}
+# Warnings raised inside third-party code that a user cannot act on.
+QUIET_WARNINGS = (
+    r".*isinstance\(treespec, LeafSpec\)` is deprecated.*",
+    r".*does not have many workers which may be a bottleneck.*",
+    r".*is smaller than the logging interval.*",
+)
+
+
+def quiet_third_party() -> None:
+    """Lower the log level of noisy third-party loggers; called at the start of each task."""
+    for name, level in QUIET_LOGGERS.items():
+        logging.getLogger(name).setLevel(level)
+    for pattern in QUIET_WARNINGS:
+        warnings.filterwarnings("ignore", message=pattern)
 
 
 def hydra_task(fn: Callable[[DictConfig], object]) -> Callable[[], object]:
@@ -20,10 +47,15 @@ def hydra_task(fn: Callable[[DictConfig], object]) -> Callable[[], object]:
     """
 
     @functools.wraps(fn)
+    def task(cfg: DictConfig) -> object:
+        quiet_third_party()
+        return fn(cfg)
+
+    @functools.wraps(fn)
     def main() -> object:
         return hydra.main(
             config_path=str(conf_dir()), config_name="config", version_base="1.3"
-        )(fn)()
+        )(task)()
 
     main.task = fn  # the undecorated task, for tests that compose configs themselves
     return main
