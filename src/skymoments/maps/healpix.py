@@ -282,6 +282,42 @@ def _spin2_rotate(q: np.ndarray, u: np.ndarray, angle: np.ndarray):
     return c * q - s * u, s * q + c * u
 
 
+def _transport_angle(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Turn of the (e_theta, e_phi) frame from unit vectors ``a`` to ``b`` along the geodesic.
+
+    Parallel transport keeps the polarization angle measured from the geodesic's tangent,
+    so ``(Q + iU)`` at ``a`` reads ``exp(2 i angle) (Q + iU)`` in the frame at ``b``.
+    """
+    ab = np.sum(a * b, axis=-1, keepdims=True)
+    t_a = b - ab * a  # direction of b seen from a
+    t_b = ab * b - a  # direction away from a, at b
+    beta = []
+    for v, t in ((a, t_a), (b, t_b)):
+        e_theta, e_phi = _local_basis(v)
+        beta.append(np.arctan2(np.sum(t * e_phi, -1), np.sum(t * e_theta, -1)))
+    same = np.linalg.norm(t_a, axis=-1) < 1e-12
+    return np.where(same, 0.0, beta[1] - beta[0])
+
+
+def _interp_pixels(tqu: np.ndarray, theta: np.ndarray, phi: np.ndarray, polarized: bool):
+    """Bilinear HEALPix interpolation (healpy's 4-pixel weights) at (theta, phi).
+
+    For Q/U the four neighbours are first carried into the frame of the target point
+    (:func:`_transport_angle`): their own (e_theta, e_phi) frames differ, by a lot near the
+    poles, and adding components of different frames would mix Q and U.
+    """
+    nside = hp.npix2nside(tqu.shape[-1])
+    pix, wgt = hp.get_interp_weights(nside, theta.ravel(), phi.ravel())
+    out = np.einsum("kn,fkn->fn", wgt, tqu[:, pix])
+    if polarized:
+        target = np.asarray(hp.ang2vec(theta.ravel(), phi.ravel())).reshape(-1, 3)
+        neigh = np.stack(hp.pix2vec(nside, pix), axis=-1)  # (4, n, 3)
+        ang = _transport_angle(neigh, np.broadcast_to(target, neigh.shape))
+        q, u = _spin2_rotate(tqu[1][pix], tqu[2][pix], ang)
+        out[1], out[2] = np.sum(wgt * q, axis=0), np.sum(wgt * u, axis=0)
+    return out.reshape((tqu.shape[0],) + theta.shape)
+
+
 def _synthesis_nside(lmax: int) -> int:
     # 2 * nside > lmax makes each equatorial ring (4 nside samples) alias-free up to lmax;
     # 3 nside >= 2 lmax puts about pi ring spacings in the shortest wavelength along a
@@ -369,11 +405,24 @@ def cut_patch(
         (0, 0), resynthesized on a finer HEALPix grid and evaluated at the patch pixels,
         exactly along rings and with a degree-7 spline between rings: the cut is
         band-limited at ``lmax`` with no pixel-scale smoothing. False: the input map is
-        interpolated bilinearly (``healpy.get_interp_val``) at the pixel positions, which
-        is cheaper but smooths at the HEALPix pixel scale.
+        interpolated bilinearly (healpy's 4-pixel weights, with Q/U of the neighbours
+        carried into the target's frame first) at the pixel positions, which
+        is much cheaper but smooths and adds interpolation noise at ``l`` of order nside
+        and above.
         Either way Q/U are turned into the patch frame pixel by pixel (module docstring).
     lmax : int, optional
-        Band limit of the alm route; default ``3 * nside - 1``.
+        Band limit of the alm route, at most (and by default) ``3 * nside - 1``. healpy's
+        ``map2alm`` recovers the alms of a band-limited map to ~1e-3 in power up to
+        ``2 * nside`` but only to a few percent above (measured at nside 128); pass
+        ``lmax=2 * nside`` where those scales matter.
+
+    Notes
+    -----
+    E-to-B leakage of an E-only sky (C_l ~ l^-2), 256 x 3 arcmin patch, Hann window,
+    alm route, nside 512: BB/EE at most 0.7% (equator), 1.0% (latitude 60) and 0.8%
+    (latitude 75) per bin for 300 < l < 1500, the same as the window alone gives on a
+    flat E-only field (0.9% in the lowest bin). The pixel route leaks up to 8-10% at
+    l > 1200 for latitudes 60-75 (interpolation on 6.9-arcmin pixels).
 
     Returns
     -------
@@ -391,8 +440,10 @@ def cut_patch(
     check_patch_fits(patch)
     if lmax is None:
         lmax = 3 * nside - 1
-    if not isinstance(lmax, int | np.integer) or not 2 <= lmax <= 4 * nside:
-        raise ValueError(f"lmax must be an integer in [2, 4 * nside = {4 * nside}], got {lmax!r}")
+    if not isinstance(lmax, int | np.integer) or not 2 <= lmax <= 3 * nside - 1:
+        raise ValueError(
+            f"lmax must be an integer in [2, 3 * nside - 1 = {3 * nside - 1}], got {lmax!r}"
+        )
     lmax = int(lmax)
 
     off = _pixel_offsets(patch)
@@ -416,7 +467,7 @@ def cut_patch(
         v_s, tx_s, ty_s = (a @ inv.T for a in (v_rot, tx, ty))
         theta = np.arccos(np.clip(v_s[..., 2], -1.0, 1.0))
         phi = np.arctan2(v_s[..., 1], v_s[..., 0])
-        out = np.stack([hp.get_interp_val(mp, theta, phi) for mp in tqu])
+        out = _interp_pixels(tqu, theta, phi, polarized)
 
     if polarized:
         g = _frame_angle(v_s, tx_s, ty_s)
