@@ -486,7 +486,10 @@ def _tracking_node(cfg: Any) -> Any:
 
 @contextlib.contextmanager
 def tracked_run(
-    cfg: Any, run_name: str = "run", tags: Mapping[str, Any] | None = None
+    cfg: Any,
+    run_name: str = "run",
+    tags: Mapping[str, Any] | None = None,
+    parent_run_id: str | None = None,
 ) -> Iterator[TrackedRun]:
     """Open one MLflow run for this job; close it FINISHED, FAILED or KILLED.
 
@@ -499,6 +502,10 @@ def tracked_run(
         Run name shown in the MLflow UI.
     tags : mapping, optional
         Extra tags.
+    parent_run_id : str, optional
+        Make the run a child of this existing run (tag ``mlflow.parentRunId``), e.g. a
+        re-evaluation of a trained run. It takes the place of a sweep's parent run. The
+        parent should be in the same experiment: the MLflow UI nests children only there.
 
     Yields
     ------
@@ -553,6 +560,9 @@ def tracked_run(
             run_tags["mlflow.parentRunId"] = parent.run_id
             if parent.sweep_id:
                 run_tags[TAG_PREFIX + "sweep_id"] = parent.sweep_id
+    if parent_run_id:
+        parent_id = str(parent_run_id)
+        run_tags["mlflow.parentRunId"] = parent_id
     for key, value in (tags or {}).items():
         run_tags[clean_key(key)] = cap_value(param_value(value), MAX_TAG_LENGTH)
 
