@@ -99,9 +99,8 @@ def baselines(cfg: DictConfig, scenario, image: np.ndarray):
 
 def run_study(cfg: DictConfig, run) -> dict[str, float]:
     """Train, evaluate and log one study into the open tracked ``run``; return its metrics."""
-    from skymoments.calibration.report import evaluate_posterior, write_posterior
     from skymoments.maps import FlatPatch
-    from skymoments.moments.pipeline import predict_moments, train_moments
+    from skymoments.moments.pipeline import train_moments
     from skymoments.sky.build import scenario_from_config
     from skymoments.sky.seeds import streams
 
@@ -119,23 +118,44 @@ def run_study(cfg: DictConfig, run) -> dict[str, float]:
     # Calibration is judged on a fresh set of independent generator draws: neither trained
     # on nor used for early stopping.
     rng = streams(int(cfg.seed), "eval")["eval"]
-    test = val_scenario.draw_components(rng, int(cfg.train.n_val))
-    mean, std = predict_moments(result.model, test["data_qu"])
-    wiener, exact = baselines(cfg, val_scenario, image) if cfg.eval.wiener else (None, None)
+    metrics = evaluate_and_log(cfg, run, result.model, val_scenario, image, out, rng,
+                               int(cfg.train.n_val), extra_metrics=result.metrics)
+    run.log_model(result.model, name="model", registered_name=cfg.tracking.get("register_as"))
+    return metrics
+
+
+def evaluate_and_log(cfg: DictConfig, run, model, scenario, image: np.ndarray, out: Path, rng,
+                     n: int, *, extra_metrics=None, header=None) -> dict[str, float]:
+    """Evaluate ``model`` on ``n`` fresh draws of ``scenario`` and log it all into ``run``.
+
+    Shared by ``run`` and ``evaluate``: the calibration report (metrics, figures,
+    ``calibration/arrays.npz``) against the Wiener baseline built from the training
+    ``image`` (shape (2, npix, npix), uK) and, for an all-Gaussian fixed scenario, the exact
+    posterior; the posterior maps as ``maps/posterior.npz`` and ``.fits``. ``out`` is the
+    local folder the files are written to first; ``header`` adds provenance to the posterior
+    files. Returns the report's metrics.
+    """
+    from skymoments.calibration.report import evaluate_posterior, write_posterior
+    from skymoments.moments.pipeline import predict_moments
+
+    patch = scenario.patch
+    test = scenario.draw_components(rng, int(n))
+    mean, std = predict_moments(model, test["data_qu"])
+    wiener, exact = baselines(cfg, scenario, image) if cfg.eval.wiener else (None, None)
     report = evaluate_posterior(
         test["signal_eb"], test["data_qu"], mean, std, patch,
         foreground_qu=test["foreground_qu"], wiener=wiener, exact=exact,
         n_fg_bins=int(cfg.eval.fg_bins),
     )
-    run.log_metrics({**report.metrics, **result.metrics})
+    run.log_metrics({**report.metrics, **(extra_metrics or {})})
     run.log_artifact(str(save_arrays(out / "arrays.npz", report.arrays,
                                      test["signal_eb"], mean, std)), artifact_path="calibration")
     for path, fig in report.figures.items():
         run.log_figure(fig, path)
-    header = {"RUNID": run.run_id, "NAME": str(cfg.name), "SEED": int(cfg.seed)}
+    header = {"RUNID": run.run_id, "NAME": str(cfg.name), "SEED": int(cfg.seed),
+              **(header or {})}
     for written in write_posterior(out / "posterior", mean, std, patch, header=header):
         run.log_artifact(str(written), artifact_path="maps")
-    run.log_model(result.model, name="model", registered_name=cfg.tracking.get("register_as"))
     return report.metrics
 
 
