@@ -406,15 +406,20 @@ def cut_patch(
         exactly along rings and with a degree-7 spline between rings: the cut is
         band-limited at ``lmax`` with no pixel-scale smoothing. False: the input map is
         interpolated bilinearly (healpy's 4-pixel weights, with Q/U of the neighbours
-        carried into the target's frame first) at the pixel positions, which
-        is much cheaper but smooths and adds interpolation noise at ``l`` of order nside
-        and above.
+        carried into the target's frame first) at the pixel positions: much cheaper,
+        but it smooths and adds interpolation noise at ``l`` of order nside and above.
         Either way Q/U are turned into the patch frame pixel by pixel (module docstring).
     lmax : int, optional
         Band limit of the alm route, at most (and by default) ``3 * nside - 1``. healpy's
         ``map2alm`` recovers the alms of a band-limited map to ~1e-3 in power up to
         ``2 * nside`` but only to a few percent above (measured at nside 128); pass
         ``lmax=2 * nside`` where those scales matter.
+
+    Returns
+    -------
+    ndarray, shape (3, n, n), (2, n, n) or (n, n), microkelvin
+        The same fields as the input, rows towards north, columns towards east, Q/U in the
+        patch frame of ``maps.eb``.
 
     Notes
     -----
@@ -423,12 +428,6 @@ def cut_patch(
     (latitude 75) per bin for 300 < l < 1500, the same as the window alone gives on a
     flat E-only field (0.9% in the lowest bin). The pixel route leaks up to 8-10% at
     l > 1200 for latitudes 60-75 (interpolation on 6.9-arcmin pixels).
-
-    Returns
-    -------
-    ndarray, shape (3, n, n), (2, n, n) or (n, n), microkelvin
-        The same fields as the input, rows towards north, columns towards east, Q/U in the
-        patch frame of ``maps.eb``.
     """
     arr, nside, scalar = _healpix_maps(maps, "maps")
     k = arr.shape[0]
