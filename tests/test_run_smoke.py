@@ -9,16 +9,37 @@ import mlflow
 import pytest
 
 NAMED_METRICS = (
-    "calib/z_mean_E", "calib/z_std_E", "calib/cov68_E", "calib/cov95_E", "calib/cov997_E",
-    "calib/z_mean_B", "calib/z_std_B", "calib/cov68_B", "calib/cov95_B", "calib/cov997_B",
-    "calib/ks_E", "calib/ks_B", "eval/mse_E", "eval/mse_B",
-    "eval/mse_ratio_wiener_E", "eval/mse_ratio_wiener_B",
-    "train/loss_mean", "val/loss_mean", "train/loss_var", "val/loss_var",
+    "calib/z_mean_E",
+    "calib/z_std_E",
+    "calib/cov68_E",
+    "calib/cov95_E",
+    "calib/cov997_E",
+    "calib/z_mean_B",
+    "calib/z_std_B",
+    "calib/cov68_B",
+    "calib/cov95_B",
+    "calib/cov997_B",
+    "calib/ks_E",
+    "calib/ks_B",
+    "eval/mse_E",
+    "eval/mse_B",
+    "eval/mse_ratio_wiener_E",
+    "eval/mse_ratio_wiener_B",
+    "train/loss_mean",
+    "val/loss_mean",
+    "train/loss_var",
+    "val/loss_var",
     "perf/train_samples_per_s",
 )
 NAMED_ARTIFACTS = (
-    "config/resolved.yaml", "maps/grid.png", "plots/z_hist.png", "plots/coverage.png",
-    "plots/spectra.png", "calibration/arrays.npz", "maps/posterior.npz", "maps/posterior.fits",
+    "config/resolved.yaml",
+    "maps/grid.png",
+    "plots/z_hist.png",
+    "plots/coverage.png",
+    "plots/spectra.png",
+    "calibration/arrays.npz",
+    "maps/posterior.npz",
+    "maps/posterior.fits",
 )
 
 
@@ -88,8 +109,9 @@ def _check_model_reloads(client, run, root, tmp_path):
     test = scenario.draw_components(streams(int(cfg.seed), "eval")["eval"], int(cfg.train.n_val))
     model = load_model(run.info.run_id, f"sqlite:///{root / 'mlflow.db'}")
     mean, std = predict_moments(model, test["data_qu"])
-    logged = download_artifact(f"sqlite:///{root / 'mlflow.db'}", run.info.run_id,
-                               "maps/posterior.npz", tmp_path / "dl")
+    logged = download_artifact(
+        f"sqlite:///{root / 'mlflow.db'}", run.info.run_id, "maps/posterior.npz", tmp_path / "dl"
+    )
     mean0, std0, _, _ = read_posterior(logged)
     # Same float32 network on the same inputs: equal up to float32 round-off.
     np.testing.assert_allclose(mean, mean0, rtol=1e-4, atol=1e-4 * np.abs(mean0).max())
@@ -102,8 +124,12 @@ def test_sweep_gives_parent_and_children_and_survives_a_failed_job(tmp_path):
     # was opened): that job must be FAILED and the first must still finish.
     root = tmp_path / "store"
     proc = _skymoments(
-        "run", "-m", "experiment=smoke", "train.optimizer.lr=0.002,-1.0",
-        f"tracking.root={root}", cwd=tmp_path,
+        "run",
+        "-m",
+        "experiment=smoke",
+        "train.optimizer.lr=0.002,-1.0",
+        f"tracking.root={root}",
+        cwd=tmp_path,
     )
     assert proc.returncode == 0, proc.stderr[-4000:]
     client = _client(root)

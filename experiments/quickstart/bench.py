@@ -20,10 +20,23 @@ from pathlib import Path
 import mlflow
 
 KEYS = (
-    "calib/z_mean_E", "calib/z_std_E", "calib/cov68_E", "calib/cov95_E", "calib/cov997_E",
-    "calib/z_mean_B", "calib/z_std_B", "calib/cov68_B", "calib/cov95_B", "calib/cov997_B",
-    "eval/mse_ratio_wiener_E", "eval/mse_ratio_wiener_B", "eval/snr_gain_E", "eval/snr_gain_B",
-    "perf/train_samples_per_s", "perf/data_draw_share", "perf/bank_s",
+    "calib/z_mean_E",
+    "calib/z_std_E",
+    "calib/cov68_E",
+    "calib/cov95_E",
+    "calib/cov997_E",
+    "calib/z_mean_B",
+    "calib/z_std_B",
+    "calib/cov68_B",
+    "calib/cov95_B",
+    "calib/cov997_B",
+    "eval/mse_ratio_wiener_E",
+    "eval/mse_ratio_wiener_B",
+    "eval/snr_gain_E",
+    "eval/snr_gain_B",
+    "perf/train_samples_per_s",
+    "perf/data_draw_share",
+    "perf/bank_s",
     "perf/synthesis_s_per_image",
 )
 
@@ -32,8 +45,15 @@ def run_once(root: Path, extra: list[str]) -> tuple[float, float]:
     """Wall seconds and peak resident memory (GiB) of one quickstart run in a child process."""
     before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     t0 = time.perf_counter()
-    cmd = [sys.executable, "-m", "skymoments.cli", "run", "experiment=quickstart",
-           f"tracking.root={root}", *extra]
+    cmd = [
+        sys.executable,
+        "-m",
+        "skymoments.cli",
+        "run",
+        "experiment=quickstart",
+        f"tracking.root={root}",
+        *extra,
+    ]
     proc = subprocess.run(cmd, cwd=root.parent, capture_output=True, text=True)
     wall = time.perf_counter() - t0
     if proc.returncode != 0:

@@ -29,8 +29,9 @@ def atomic_path(path: str | os.PathLike, overwrite: bool = True) -> Iterator[Pat
     if not overwrite and final.exists():
         raise FileExistsError(f"{final} exists; pass --force (or overwrite=true) to replace it")
     final.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{final.name}.", suffix=".part" + final.suffix,
-                               dir=final.parent)
+    fd, tmp = tempfile.mkstemp(
+        prefix=f".{final.name}.", suffix=".part" + final.suffix, dir=final.parent
+    )
     os.close(fd)
     tmp_path = Path(tmp)
     try:

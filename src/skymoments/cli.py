@@ -45,7 +45,9 @@ def main(argv: list[str] | None = None) -> int:
         module = importlib.import_module(f"skymoments.commands.{sub}")
     except ModuleNotFoundError as err:
         if err.name == f"skymoments.commands.{sub}":
-            print(f"skymoments: subcommand {sub!r} is not available in this version", file=sys.stderr)
+            print(
+                f"skymoments: subcommand {sub!r} is not available in this version", file=sys.stderr
+            )
             return 2
         raise
     sys.argv = [f"skymoments {sub}", *rest]

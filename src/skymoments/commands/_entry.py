@@ -12,7 +12,6 @@ from omegaconf import DictConfig
 
 from skymoments.config import conf_dir
 
-
 # Third-party chatter that buries our own output: Lightning's start-up banners and tips,
 # MLflow's note on pickled models (we pickle on purpose: DEVELOPERS.md, Tracking).
 QUIET_LOGGERS = {
@@ -53,9 +52,9 @@ def hydra_task(fn: Callable[[DictConfig], object]) -> Callable[[], object]:
 
     @functools.wraps(fn)
     def main() -> object:
-        return hydra.main(
-            config_path=str(conf_dir()), config_name="config", version_base="1.3"
-        )(task)()
+        return hydra.main(config_path=str(conf_dir()), config_name="config", version_base="1.3")(
+            task
+        )()
 
     main.task = fn  # the undecorated task, for tests that compose configs themselves
     return main

@@ -13,11 +13,22 @@ from skymoments.config import validate
 
 # Metrics shown in the end-of-run summary table.
 SUMMARY_KEYS = (
-    "calib/z_mean_E", "calib/z_std_E", "calib/cov68_E", "calib/cov95_E",
-    "calib/z_mean_B", "calib/z_std_B", "calib/cov68_B", "calib/cov95_B",
-    "eval/mse_E", "eval/mse_B", "eval/mse_ratio_wiener_E", "eval/mse_ratio_wiener_B",
-    "eval/mse_ratio_exact_E", "eval/mse_ratio_exact_B",
-    "eval/var_ratio_exact_E", "eval/var_ratio_exact_B",
+    "calib/z_mean_E",
+    "calib/z_std_E",
+    "calib/cov68_E",
+    "calib/cov95_E",
+    "calib/z_mean_B",
+    "calib/z_std_B",
+    "calib/cov68_B",
+    "calib/cov95_B",
+    "eval/mse_E",
+    "eval/mse_B",
+    "eval/mse_ratio_wiener_E",
+    "eval/mse_ratio_wiener_B",
+    "eval/mse_ratio_exact_E",
+    "eval/mse_ratio_exact_B",
+    "eval/var_ratio_exact_E",
+    "eval/var_ratio_exact_B",
 )
 
 
@@ -49,7 +60,7 @@ def training_image(cfg: DictConfig, patch) -> np.ndarray:
 
 
 def training_foreground(cfg: DictConfig, patch, image: np.ndarray, run):
-    """The foreground source for training pairs, as ``augment`` selects, or None for the generator."""
+    """The training foreground as ``augment`` selects; None means the generator itself."""
     from skymoments.sky.foregrounds import ImageBank
 
     aug = cfg.augment
@@ -111,21 +122,46 @@ def run_study(cfg: DictConfig, run) -> dict[str, float]:
     fg = training_foreground(cfg, patch, image, run)
     train_scenario = scenario_from_config(training_config(cfg), foreground=fg)
 
-    result = train_moments(cfg, train_scenario, val_scenario, logger=run.lightning_logger(),
-                           workdir=out / "checkpoints")
+    result = train_moments(
+        cfg,
+        train_scenario,
+        val_scenario,
+        logger=run.lightning_logger(),
+        workdir=out / "checkpoints",
+    )
     run.log_metrics({k: float(v) for k, v in result.perf.items()})
 
     # Calibration is judged on a fresh set of independent generator draws: neither trained
     # on nor used for early stopping.
     rng = streams(int(cfg.seed), "eval")["eval"]
-    metrics = evaluate_and_log(cfg, run, result.model, val_scenario, image, out, rng,
-                               int(cfg.train.n_val), extra_metrics=result.metrics)
+    metrics = evaluate_and_log(
+        cfg,
+        run,
+        result.model,
+        val_scenario,
+        image,
+        out,
+        rng,
+        int(cfg.train.n_val),
+        extra_metrics=result.metrics,
+    )
     run.log_model(result.model, name="model", registered_name=cfg.tracking.get("register_as"))
     return metrics
 
 
-def evaluate_and_log(cfg: DictConfig, run, model, scenario, image: np.ndarray, out: Path, rng,
-                     n: int, *, extra_metrics=None, header=None) -> dict[str, float]:
+def evaluate_and_log(
+    cfg: DictConfig,
+    run,
+    model,
+    scenario,
+    image: np.ndarray,
+    out: Path,
+    rng,
+    n: int,
+    *,
+    extra_metrics=None,
+    header=None,
+) -> dict[str, float]:
     """Evaluate ``model`` on ``n`` fresh draws of ``scenario`` and log it all into ``run``.
 
     Shared by ``run`` and ``evaluate``: the calibration report (metrics, figures,
@@ -143,17 +179,24 @@ def evaluate_and_log(cfg: DictConfig, run, model, scenario, image: np.ndarray, o
     mean, std = predict_moments(model, test["data_qu"])
     wiener, exact = baselines(cfg, scenario, image) if cfg.eval.wiener else (None, None)
     report = evaluate_posterior(
-        test["signal_eb"], test["data_qu"], mean, std, patch,
-        foreground_qu=test["foreground_qu"], wiener=wiener, exact=exact,
+        test["signal_eb"],
+        test["data_qu"],
+        mean,
+        std,
+        patch,
+        foreground_qu=test["foreground_qu"],
+        wiener=wiener,
+        exact=exact,
         n_fg_bins=int(cfg.eval.fg_bins),
     )
     run.log_metrics({**report.metrics, **(extra_metrics or {})})
-    run.log_artifact(str(save_arrays(out / "arrays.npz", report.arrays,
-                                     test["signal_eb"], mean, std)), artifact_path="calibration")
+    run.log_artifact(
+        str(save_arrays(out / "arrays.npz", report.arrays, test["signal_eb"], mean, std)),
+        artifact_path="calibration",
+    )
     for path, fig in report.figures.items():
         run.log_figure(fig, path)
-    header = {"RUNID": run.run_id, "NAME": str(cfg.name), "SEED": int(cfg.seed),
-              **(header or {})}
+    header = {"RUNID": run.run_id, "NAME": str(cfg.name), "SEED": int(cfg.seed), **(header or {})}
     for written in write_posterior(out / "posterior", mean, std, patch, header=header):
         run.log_artifact(str(written), artifact_path="maps")
     return report.metrics

@@ -75,8 +75,9 @@ def quicklook_figure(parts: dict[str, np.ndarray], max_rows: int = 3):
         ("data U", parts["data_qu"][:, 1]),
     ]
     rows = min(max_rows, len(parts["data_qu"]))
-    fig, axes = plt.subplots(rows, len(cols), figsize=(2.1 * len(cols), 2.1 * rows + 0.4),
-                             squeeze=False)
+    fig, axes = plt.subplots(
+        rows, len(cols), figsize=(2.1 * len(cols), 2.1 * rows + 0.4), squeeze=False
+    )
     for r in range(rows):
         for c, (title, maps) in enumerate(cols):
             ax = axes[r, c]
@@ -97,8 +98,11 @@ def print_summary(parts: dict[str, np.ndarray], patch, npz_path: Path, png_path:
     from rich.table import Table
 
     console = Console()
-    table = Table(title=f"{len(parts['data_qu'])} samples on a {patch.npix}x{patch.npix} patch "
-                        f"of {patch.pixel_arcmin:g} arcmin", title_justify="left")
+    table = Table(
+        title=f"{len(parts['data_qu'])} samples on a {patch.npix}x{patch.npix} patch "
+        f"of {patch.pixel_arcmin:g} arcmin",
+        title_justify="left",
+    )
     table.add_column("component")
     table.add_column("rms ch0 [uK]", justify="right")
     table.add_column("rms ch1 [uK]", justify="right")

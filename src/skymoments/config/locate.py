@@ -17,7 +17,9 @@ def conf_dir() -> Path:
     if env:
         path = Path(env).expanduser().resolve()
         if not (path / "config.yaml").is_file():
-            raise ValueError(f"SKYMOMENTS_CONF={env} has no config.yaml; point it at a conf/ folder")
+            raise ValueError(
+                f"SKYMOMENTS_CONF={env} has no config.yaml; point it at a conf/ folder"
+            )
         return path
     here = Path(__file__).resolve().parent.parent
     for candidate in (here / "conf", here.parent.parent / "conf"):

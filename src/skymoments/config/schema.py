@@ -154,7 +154,8 @@ def _check_tracking(cfg: DictConfig) -> None:
         uri = cfg.tracking.get("uri") if not OmegaConf.is_missing(cfg.tracking, "uri") else None
         if not uri or not str(uri).startswith(("http://", "https://")):
             raise ConfigError(
-                f"tracking=server needs tracking.uri=http://HOST:PORT of a tracking server, got {uri!r}"
+                "tracking=server needs tracking.uri=http://HOST:PORT of a tracking server, "
+                f"got {uri!r}"
             )
 
 
@@ -181,15 +182,16 @@ def validate(cfg: DictConfig, command: str | None = None) -> DictConfig:
         if key not in cfg:
             raise ConfigError(f"the config has no '{key}' node; compose it from conf/config.yaml")
     missing = {
-        key for key in OmegaConf.missing_keys(cfg)
+        key
+        for key in OmegaConf.missing_keys(cfg)
         if key.split(".")[0] not in COMMAND_NODES or key.split(".")[0] == command
     }
     if missing:
         raise ConfigError(
-            "mandatory config values are not set: " + ", ".join(sorted(missing))
+            "mandatory config values are not set: "
+            + ", ".join(sorted(missing))
             + " (give them as key=value overrides)"
         )
     for check in CHECKS:
         check(cfg)
     return cfg
-

@@ -39,7 +39,8 @@ class FlatPatch:
         if side_deg > 180.0:
             raise ValueError(
                 f"patch of {self.npix} x {self.pixel_arcmin} arcmin = {side_deg:.1f} deg is larger "
-                "than the flat-sky approximation allows (at most 180 deg); use fewer or smaller pixels"
+                "than the flat-sky approximation allows (at most 180 deg); "
+                "use fewer or smaller pixels"
             )
 
     @property
@@ -130,7 +131,9 @@ def check_maps(maps, patch: FlatPatch, name: str = "maps", channels: int | None 
         Expected channel count (2 for Q/U or E/B); None for a scalar map (..., npix, npix).
     """
     shape = tuple(maps.shape)
-    want = ("...", channels, patch.npix, patch.npix) if channels else ("...", patch.npix, patch.npix)
+    want = (
+        ("...", channels, patch.npix, patch.npix) if channels else ("...", patch.npix, patch.npix)
+    )
     tail = shape[-3:] if channels else shape[-2:]
     expected_tail = (channels, patch.npix, patch.npix) if channels else (patch.npix, patch.npix)
     if len(shape) < len(expected_tail) or tail != expected_tail:

@@ -164,6 +164,8 @@ def map_spectra_eb(
     fb = fa if eb_b is None else np.fft.fft2(np.asarray(eb_b))
     out: dict[str, np.ndarray] = {}
     for name, i, j in (("EE", 0, 0), ("BB", 1, 1), ("EB", 0, 1)):
-        ell, out[name] = bin_2d(cross_power_2d(fa[..., i, :, :], fb[..., j, :, :], patch), patch, edges)
+        ell, out[name] = bin_2d(
+            cross_power_2d(fa[..., i, :, :], fb[..., j, :, :], patch), patch, edges
+        )
     out["ell"] = ell
     return out
