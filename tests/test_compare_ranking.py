@@ -195,14 +195,31 @@ def test_table_text_shows_ranks_params_metrics_and_unranked_runs():
         make_run(2, status="FAILED", params={"train.lr": "0.1"}),
     ]
     comp = build_comparison(_selection(runs), resolve_objective("eval/mse_B"))
-    text = render_text(comp, width=220)
+    # 80 columns: the default width of a console that is not a terminal.
+    text = render_text(comp, width=80)
+    assert max(len(line) for line in text.splitlines()) <= 80
     lines = text.splitlines()
-    row0 = next(line for line in lines if "job0" in line)
-    row1 = next(line for line in lines if "job1" in line)
-    assert lines.index(row1) < lines.index(row0)  # best first
-    assert row1.split()[1] == "1" or " 1 " in row1
-    assert "0.001" in row1 and "0.01" in row0
-    assert "1.5 / 2" in row0 and "1.1 / 0.95" in row0
-    assert "train.lr" in text and "E / B" in text
+
+    def cells(line):
+        return [c.strip() for c in line.strip()[1:-1].split("│")]
+
+    ranking = [cells(line) for line in lines if line.startswith("│") and "job" in line][:3]
+    assert [(r[0], r[1], r[3], r[4], r[5]) for r in ranking] == [
+        ("1", "job1", "FINISHED", "1", "0.001"),
+        ("2", "job0", "FINISHED", "2", "0.01"),
+        ("-", "job2", "FAILED", "-", "0.1"),
+    ]
+    assert any("train.lr" in line for line in lines if line.startswith("┃"))
+    # Key metrics: two rows per run with metrics, E then B; columns z mean, z std, cov68,
+    # cov95, KS, MSE, MSE/Wiener after (#, run, C). The failed run has none and no rows.
+    metric_rows = [cells(line) for line in lines if line.startswith("│")][3:]
+    assert [r[:3] for r in metric_rows] == [
+        ["1", "job1", "E"],
+        ["", "", "B"],
+        ["2", "job0", "E"],
+        ["", "", "B"],
+    ]
+    assert metric_rows[2][4] == "1.1" and metric_rows[3][4] == "0.95"
+    assert metric_rows[2][8] == "1.5" and metric_rows[3][8] == "2"
+    assert metric_rows[1][8] == "1" and metric_rows[0][8] == "-"
     assert "not ranked: job2 (status FAILED)" in text
-    assert "FAILED" in next(line for line in lines if "job2" in line)

@@ -2,7 +2,7 @@
 
     skymoments compare compare.sweep=<parent run id>
     skymoments compare compare.experiment=quickstart compare.objective=calibration_score
-    skymoments compare "compare.filter=params.model.mean.width = '32'" compare.out=cmp.html
+    skymoments compare "compare.filter=\"params.model.mean.width = '32'\"" compare.out=cmp.html
 
 Options are in ``conf/compare/default.yaml``; the logic is in :mod:`skymoments.compare`.
 """
@@ -38,11 +38,17 @@ def compare(cfg: DictConfig):
             "the config has no 'compare' node; add `- compare: default` to the defaults of "
             "conf/config.yaml"
         )
+    sweep = node.get("sweep")
+    if isinstance(sweep, (float, bool)):
+        raise ValueError(
+            f"compare.sweep was read by Hydra as the {type(sweep).__name__} {sweep!r}, not as a "
+            "run id; quote it: compare.sweep=\"'<id>'\""
+        )
     ignore = OmegaConf.to_container(node.get("ignore_params") or [], resolve=True)
     return compare_runs(
         cfg.tracking,
         experiment=node.get("experiment"),
-        sweep=None if node.get("sweep") is None else str(node.sweep),
+        sweep=None if sweep is None else str(sweep),
         filter_string=node.get("filter"),
         objective=str(node.get("objective") or "eval/mse_B"),
         direction=str(node.get("direction") or "auto"),

@@ -7,6 +7,8 @@ comparison (its :class:`~skymoments.tracking.TrackingUnavailableError` propagate
 
 from __future__ import annotations
 
+import contextlib
+import os
 import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -65,9 +67,25 @@ class CalibrationCurves:
         return self.z_edges is not None and len(self.z_density) == len(COMPONENTS)
 
 
+@contextlib.contextmanager
+def _quiet_downloads():
+    """Turn MLflow's download progress bars off for a block (they clutter the table)."""
+    key = "MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR"
+    saved = os.environ.get(key)
+    os.environ[key] = "false"
+    try:
+        yield
+    finally:
+        if saved is None:
+            os.environ.pop(key, None)
+        else:
+            os.environ[key] = saved
+
+
 def _download(tracking: Any, run_id: str, path: str, dst: Path) -> tuple[Path | None, str]:
     try:
-        local = download_artifact(tracking, run_id, path, dst)
+        with _quiet_downloads():
+            local = download_artifact(tracking, run_id, path, dst)
     except TrackingUnavailableError:
         raise
     except Exception as exc:  # MLflow raises several types for a missing artifact

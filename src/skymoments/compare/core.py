@@ -6,12 +6,11 @@ import math
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
-from skymoments.calibration.metrics import COMPONENTS
 from skymoments.compare.objective import Objective, RankedRun, rank_runs
 from skymoments.compare.params import VaryingParam, varying_params
 from skymoments.compare.select import Selection
 
-__all__ = ["KEY_METRICS", "Comparison", "build_comparison", "format_value", "metric_pair"]
+__all__ = ["KEY_METRICS", "Comparison", "build_comparison", "format_value"]
 
 # (label, metric stem, ideal value or None): the stem gets _E / _B appended. Ideals from the
 # calibration contract (ARCHITECTURE.md): z ~ N(0, 1), Gaussian coverage at 1 and 2 sigma
@@ -36,12 +35,6 @@ def format_value(value: float | str | None, digits: int = 4) -> str:
     if not math.isfinite(value):
         return str(value)
     return f"{value:.{digits}g}"
-
-
-def metric_pair(metrics: dict[str, float], stem: str) -> tuple[float | None, float | None]:
-    """``(metrics[stem_E], metrics[stem_B])``, None where absent."""
-    e, b = (metrics.get(f"{stem}_{c}") for c in COMPONENTS)
-    return e, b
 
 
 @dataclass

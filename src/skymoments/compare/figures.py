@@ -45,7 +45,9 @@ def _png(fig) -> bytes:
     plt = _plt()
     buffer = io.BytesIO()
     try:
-        fig.savefig(buffer, format="png", dpi=90, bbox_inches="tight")
+        # Fixed margins (set by each figure) rather than tight bounding boxes: the tight
+        # layout measures every tick label again and costs more than the drawing itself.
+        fig.savefig(buffer, format="png", dpi=90)
     finally:
         plt.close(fig)
     return buffer.getvalue()
@@ -143,7 +145,8 @@ def param_figure(comp: Comparison, param: VaryingParam) -> bytes:
         ax.axis("off")
     alias = f" (with {len(param.aliases)} confounded)" if param.aliases else ""
     fig.suptitle(f"{param.key}{alias}", fontsize=10)
-    fig.tight_layout()
+    bottom = 0.16 if labels is not None else 0.08
+    fig.subplots_adjust(left=0.06, right=0.99, bottom=bottom, top=0.9, wspace=0.3, hspace=0.55)
     return _png(fig)
 
 
@@ -188,7 +191,7 @@ def z_hist_figure(comp: Comparison, curves: Mapping[str, CalibrationCurves]) -> 
         ax.set_ylabel("density", fontsize=8)
         ax.tick_params(labelsize=7)
         _legend(ax, len(entries) + 1)
-    fig.tight_layout()
+    fig.subplots_adjust(left=0.07, right=0.99, bottom=0.14, top=0.92, wspace=0.2)
     return _png(fig)
 
 
@@ -223,5 +226,5 @@ def coverage_figure(comp: Comparison, curves: Mapping[str, CalibrationCurves]) -
         ax.set_ylabel("empirical coverage", fontsize=8)
         ax.tick_params(labelsize=7)
         _legend(ax, len(entries) + 1)
-    fig.tight_layout()
+    fig.subplots_adjust(left=0.08, right=0.99, bottom=0.12, top=0.93, wspace=0.25)
     return _png(fig)

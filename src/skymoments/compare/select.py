@@ -79,8 +79,9 @@ def check_store(settings: TrackingSettings) -> None:
     if not path.is_file():
         raise ValueError(
             f"no tracking store at {path} (tracking URI {settings.tracking_uri}); point "
-            "tracking.root at the folder holding mlflow.db (the folder `skymoments run` was "
-            "launched from, default ./skymoments-runs), or track some runs first"
+            "tracking.root at the store folder that holds mlflow.db (by default "
+            "skymoments-runs/ in the folder `skymoments run` was launched from), or track "
+            "some runs first"
         )
     if not _has_mlflow_schema(path):
         raise ValueError(
@@ -112,7 +113,8 @@ def _find_parent(settings: TrackingSettings, sweep: str) -> RunRecord:
         raise ValueError(
             f"no sweep {sweep!r} in {settings.tracking_uri}: no run has that id and no sweep "
             f"parent run has the tag {SWEEP_ID_TAG}={sweep}; pass the parent run id printed "
-            "at the start of the sweep (or the sweep id shown as its tag)"
+            "at the start of the sweep (or the sweep id shown as its tag); on the command line "
+            "quote an id that is all digits: compare.sweep=\"'<id>'\""
         )
     return found[-1]
 

@@ -1,9 +1,12 @@
-"""The terminal table of a comparison (rich).
+"""The terminal tables of a comparison (rich).
 
-Layout: one row per run, best first, unranked runs last (dimmed, their status in red). The
-columns are the rank, the run (name and short id), the status, the objective, the params that
-vary (a representative of each confounded group, at most ``max_param_columns`` of them), then
-the key metrics with E and B in one cell (``E / B``).
+Two tables, so that both fit an 80-column terminal:
+
+* the ranking: one row per run, best first, unranked runs last (dimmed, status in red), with
+  the rank, the run's name and short id, its status, the objective and the params that vary
+  (a representative of each confounded group, at most ``max_param_columns`` of them);
+* the key metrics: two rows per run with metrics (component E, then B), same order, one
+  column per metric.
 """
 
 from __future__ import annotations
@@ -14,50 +17,76 @@ from rich.console import Console
 from rich.table import Table
 from rich.text import Text
 
-from skymoments.compare.core import KEY_METRICS, Comparison, format_value, metric_pair
+from skymoments.calibration.metrics import COMPONENTS
+from skymoments.compare.core import KEY_METRICS, Comparison, format_value
 
-__all__ = ["comparison_table", "print_comparison", "render_text"]
+__all__ = ["comparison_table", "metrics_table", "print_comparison", "render_text"]
 
 
 def _short(run_id: str) -> str:
     return run_id[:8]
 
 
+def _rank(entry) -> str:
+    return str(entry.rank) if entry.ranked else "-"
+
+
 def comparison_table(comp: Comparison, max_param_columns: int = 6) -> Table:
-    """The runs table of ``comp`` as a rich Table."""
-    title = f"{len(comp.entries)} runs: {comp.selection.description}"
+    """The ranking table of ``comp``: runs, status, objective, varying params."""
     table = Table(
-        title=title,
+        title=f"{len(comp.entries)} runs: {comp.selection.description}",
         caption=f"ranked by {comp.objective.description}",
         header_style="bold",
-        show_lines=False,
     )
     table.add_column("#", justify="right")
-    table.add_column("run")
+    table.add_column("run", overflow="fold")
+    table.add_column("id")
     table.add_column("status")
     table.add_column(comp.objective.name, justify="right")
     shown = comp.params[: max(0, max_param_columns)]
     for p in shown:
-        header = p.key + (f" (+{len(p.aliases)})" if p.aliases else "")
-        table.add_column(header, overflow="fold")
-    for label, _, _ in KEY_METRICS:
-        table.add_column(f"{label}\nE / B", justify="right")
+        table.add_column(p.key + (f" (+{len(p.aliases)})" if p.aliases else ""), overflow="fold")
     for i, entry in enumerate(comp.entries):
         run = entry.run
         status = Text(run.status, style="green" if run.status == "FINISHED" else "red")
         cells: list = [
-            str(entry.rank) if entry.ranked else "-",
-            f"{run.name or '(unnamed)'} {_short(run.run_id)}",
+            _rank(entry),
+            run.name or "(unnamed)",
+            _short(run.run_id),
             status,
             format_value(entry.value),
         ]
-        for p in shown:
-            value = p.values[i]
-            cells.append("-" if value is None else value)
-        for _, stem, _ in KEY_METRICS:
-            e, b = metric_pair(run.metrics, stem)
-            cells.append(f"{format_value(e)} / {format_value(b)}")
+        cells += ["-" if p.values[i] is None else p.values[i] for p in shown]
         table.add_row(*cells, style=None if entry.ranked else "dim")
+    return table
+
+
+def metrics_table(comp: Comparison) -> Table | None:
+    """The key metrics per run and component, in ranking order; None when no run has any."""
+    stems = [stem for _, stem, _ in KEY_METRICS]
+    entries = [
+        e
+        for e in comp.entries
+        if any(f"{s}_{c}" in e.run.metrics for s in stems for c in COMPONENTS)
+    ]
+    if not entries:
+        return None
+    table = Table(title="key metrics", header_style="bold")
+    table.add_column("#", justify="right")
+    table.add_column("run", overflow="fold")
+    table.add_column("C")
+    for label, _, ideal in KEY_METRICS:
+        header = label if ideal is None else f"{label}\n({format_value(ideal)})"
+        table.add_column(header, justify="right")
+    for entry in entries:
+        for k, c in enumerate(COMPONENTS):
+            cells = [_rank(entry) if k == 0 else "", (entry.run.name or "") if k == 0 else "", c]
+            cells += [format_value(entry.run.metrics.get(f"{stem}_{c}")) for stem in stems]
+            table.add_row(
+                *cells,
+                style=None if entry.ranked else "dim",
+                end_section=k == len(COMPONENTS) - 1,
+            )
     return table
 
 
@@ -67,6 +96,9 @@ def print_comparison(
     """Print the table, then what it could not show (more params, aliases, unranked runs)."""
     console = console or Console()
     console.print(comparison_table(comp, max_param_columns))
+    metrics = metrics_table(comp)
+    if metrics is not None:
+        console.print(metrics)
     hidden = comp.params[max(0, max_param_columns) :]
     if hidden:
         console.print(
