@@ -101,7 +101,7 @@ def provenance_cards(prov: Mapping[str, Any]) -> list[tuple[str, Any, str]]:
     """Standard 8-character FITS cards for the provenance dict of a prediction.
 
     Keys used: ``MODELURI``, ``MODELREF``, ``MODELNAM``, ``MODELVER``, ``MODELRUN``,
-    ``INPUT``, ``INSHA256``, ``INFORMAT``, ``QUCONV``, ``NSIDE``, ``PREDRUN``, and per patch
+    ``INPUT``, ``INSHA256``, ``INFORMAT``, ``QUCONV``, ``INNSIDE``, ``PREDRUN``, and per patch
     ``CLONi``/``CLATi`` (centre, deg) for HEALPix cuts. Long strings use FITS's CONTINUE
     convention (astropy).
     """
@@ -115,7 +115,7 @@ def provenance_cards(prov: Mapping[str, Any]) -> list[tuple[str, Any, str]]:
         ("INSHA256", "input_sha256", "SHA-256 of the input file"),
         ("INFORMAT", "input_format", "array, image or healpix"),
         ("QUCONV", "input_convention", "Q/U convention of the input"),
-        ("NSIDE", "nside", "HEALPix resolution of the input"),
+        ("INNSIDE", "nside", "HEALPix resolution of the input map"),
         ("PREDRUN", "prediction_run_id", "MLflow run of this prediction"),
     )
     cards = []
@@ -131,6 +131,19 @@ def provenance_cards(prov: Mapping[str, Any]) -> list[tuple[str, Any, str]]:
     return cards
 
 
+def _fitted_cards(cards: list[tuple[str, Any, str]]) -> list[tuple[str, Any, str]]:
+    """Drop the comment of a card that would not fit on 80 characters with it."""
+    from astropy.io import fits
+
+    out = []
+    for key, value, comment in cards:
+        bare = fits.Card(key, value).image.rstrip()  # long strings span CONTINUE cards
+        if len(bare) + len(" / ") + len(comment) > 80:
+            comment = ""
+        out.append((key, value, comment))
+    return out
+
+
 def _stamp_fits(path: Path, cards: list[tuple[str, Any, str]]) -> None:
     from astropy.io import fits
 
@@ -139,9 +152,9 @@ def _stamp_fits(path: Path, cards: list[tuple[str, Any, str]]) -> None:
             hdul[0].header[key] = (value, comment)
         for hdu in hdul[1:]:
             # Each image says where its maps came from without reading the primary.
-            for key in ("MODELURI", "INSHA256", "QUCONV"):
-                if key in hdul[0].header:
-                    hdu.header[key] = (hdul[0].header[key], hdul[0].header.comments[key])
+            for key, value, comment in cards:
+                if key in ("MODELURI", "INSHA256", "QUCONV"):
+                    hdu.header[key] = (value, comment)
         hdul.flush()
 
 
@@ -305,7 +318,7 @@ def write_outputs(
     if "healpix" in paths and healpix_maps is None:
         raise ValueError("a HEALPix output needs healpix_maps")
     prov = dict(provenance)
-    cards = provenance_cards(prov)
+    cards = _fitted_cards(provenance_cards(prov))
     staging = Path(tempfile.mkdtemp(prefix=".predict-", suffix=".staging", dir=out_dir))
     try:
         staged: dict[str, Path] = {}

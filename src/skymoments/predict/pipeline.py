@@ -85,11 +85,15 @@ class PredictOptions:
                 "conf/config.yaml (or pass +predict=default)"
             )
         if isinstance(node, DictConfig):
-            missing = sorted(OmegaConf.missing_keys(node))
+            # Keys come with their full path when the node sits inside a config.
+            missing = sorted(
+                k if k.startswith("predict.") else f"predict.{k}"
+                for k in OmegaConf.missing_keys(node)
+            )
             if missing:
                 raise ValueError(
                     "mandatory predict values are not set: "
-                    + ", ".join(f"predict.{k}" for k in missing)
+                    + ", ".join(missing)
                     + " (give them as key=value overrides, e.g. predict.model=models:/NAME/1 "
                     "predict.input=map.npy)"
                 )
