@@ -189,7 +189,9 @@ def prepare_target(image: np.ndarray, boundary: str) -> np.ndarray:
     * ``mirror``: the image reflected into a (C, 2n, 2n) periodic map; the synthesis then
       runs at 2n and keeps the top-left n x n corner. A reflection flips the sign of U
       (and of B) (REFERENCES.md, "Patch symmetries"), so channel 1 changes sign in the
-      reflected quadrants.
+      reflected quadrants. U is then discontinuous across the mirror lines (a
+      reflection-symmetric polarization field has U = 0 on them), an imprint that the
+      synthesis learns too; ``apodize`` avoids it at the cost of a taper.
     * ``apodize``: the image's fluctuation about its mean multiplied by a cosine taper of
       width 0.15 of the side, then rescaled by ``1 / sqrt(mean(w^2))`` to restore its
       variance. The taper's imprint on the moments is the price of this option.

@@ -23,8 +23,9 @@ al. 2020, Sec. 3.2, and Regaldo-Saint Blancard et al., arXiv:2102.03160, Sec. 3)
   ``delta_l`` steps, tau = 0;
 * ``Cphase``: k1 = 1 at ``j1``, k2 = 2^(j2 - j1) at ``j2 = j1 + 1 .. j1 + delta_j``, same
   orientation, tau = 0: the phase alignment across scales;
-* ``L``: scaling-function moments: the channel means and the covariance of the
-  low-passed maps;
+* ``L``: scaling-function moments: the channel means, the covariance of the
+  low-passed maps, and (our addition) the one-point moments ``<|y - mean|^p>``, p = 1, 3,
+  of each channel and of ``|P|``, which pin the pixel histogram's width and tails;
 * ``P`` (our addition, off with ``spectrum_bins=0``): the power in ``n // 4`` linear
   annuli of ``|w|`` (the project's default spectrum bins, ``FlatPatch.default_bin_edges``)
   of E, B and E x B for two channels (of the map for one). ``S11`` pins the spectrum
@@ -187,6 +188,7 @@ class WPHStatistics:
         self.norm_low = torch.ones(c, dtype=dtype, device=device)
         self.norm_mean = torch.ones(c, dtype=dtype, device=device)
         self.norm_spec = None
+        self.norm_onepoint = torch.ones(c + (c == 2), 2, dtype=dtype, device=device)
         if reference is not None:
             self.set_reference(reference)
 
@@ -212,8 +214,9 @@ class WPHStatistics:
                 tau = _shift_vectors(self.config.delta_n, half) * 2**j
                 tau = tau[np.abs(tau).max(axis=1) < lim]
                 shifts.append(tau)
+                tt = torch.as_tensor(tau, dtype=torch.float64)
                 ph = torch.exp(
-                    1j * (wy.reshape(-1, 1) * tau[:, 0] + wx.reshape(-1, 1) * tau[:, 1])
+                    1j * (wy.reshape(-1, 1) * tt[:, 0] + wx.reshape(-1, 1) * tt[:, 1])
                 ) / (self.npix**2)
                 phases.append(ph.to(self.cdtype).to(self.device))
                 psi2 = self.psi[j].to(torch.float64).reshape(self.n_theta, -1) ** 2  # (T, N)
@@ -272,6 +275,12 @@ class WPHStatistics:
         self.norm_low = low.std(dim=(-2, -1), unbiased=False)[0]
         self.norm_mean = x.std(dim=(-2, -1), unbiased=False)[0]
         self.norm_spec = None
+        ys = [x[:, i] for i in range(x.shape[1])]
+        if x.shape[1] == 2:
+            ys.append(torch.sqrt(x[:, 0] ** 2 + x[:, 1] ** 2))
+        ys = torch.stack(ys, dim=1)
+        sd = ys.std(dim=(-2, -1), unbiased=False)[0]
+        self.norm_onepoint = torch.stack([sd, sd**3], dim=-1)
         if self.n_spectrum_bins:
             raw = self._spectrum(torch.fft.fft2(x).reshape(1, x.shape[1], -1))[0]
             if x.shape[1] == 2:
@@ -279,7 +288,7 @@ class WPHStatistics:
                 raw[2] = torch.sqrt(raw[0] * raw[1])
             # An empty or powerless annulus (a tiny map) must not divide by zero.
             self.norm_spec = torch.clamp(raw, min=float(raw.max()) * 1e-8)
-        for name in ("norm0", "norm1", "norm_low", "norm_mean"):
+        for name in ("norm0", "norm1", "norm_low", "norm_mean", "norm_onepoint"):
             t = getattr(self, name)
             floor = t.max() * 1e-6
             if not torch.all(t > 0):
@@ -424,6 +433,17 @@ class WPHStatistics:
         cov = (low[:, sa] * low[:, sb]).mean(dim=(-2, -1))
         out["L"].append((cov / (self.norm_low[sa] * self.norm_low[sb])).to(self.cdtype))
         tags["L"] += ["inv", "inv"]
+        # One-point moments <|y - mean|^p>, p = 1, 3, of each channel and of |P| (two
+        # channels): the pixel histogram's width and tails, which the wavelet moments
+        # constrain only indirectly (our addition, a j = 0 scaling moment with phi = delta).
+        ys = [x[:, i] for i in range(c)]
+        if c == 2:
+            ys.append(torch.sqrt(x[:, 0] ** 2 + x[:, 1] ** 2 + _TINY))
+        ys = torch.stack(ys, dim=1)
+        dev = (ys - ys.mean(dim=(-2, -1), keepdim=True)).abs()
+        onep = torch.stack([dev.mean(dim=(-2, -1)), dev.pow(3).mean(dim=(-2, -1))], dim=-1)
+        out["L"].append((onep / self.norm_onepoint).to(self.cdtype))
+        tags["L"].append("inv")
         if self.n_spectrum_bins:
             spec = self._spectrum(xflat)
             if self.norm_spec is not None:

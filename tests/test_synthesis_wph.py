@@ -1,0 +1,169 @@
+"""Wavelet bank and WPH statistics: frame bounds, Parseval, symmetries, gradients."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+
+from skymoments.synthesis.wavelets import wavelet_bank
+from skymoments.synthesis.wph import WPHConfig, WPHStatistics
+
+
+def _smooth_field(rng, n=32, c=2, slope=2.0):
+    """A seeded red-spectrum random field (C, n, n), so that every wavelet band has power."""
+    k = np.hypot(*np.meshgrid(np.fft.fftfreq(n), np.fft.fftfreq(n), indexing="ij"))
+    amp = np.where(k > 0, (k + 1.0 / n) ** (-slope / 2), 0.0)
+    white = np.fft.fft2(rng.standard_normal((c, n, n)))
+    x = np.fft.ifft2(white * amp).real
+    return x + 0.3 * x**2  # a little non-Gaussianity, so higher moments are non-trivial
+
+
+def _s11_sum(x, J, L):
+    """sum over wavelets of <|x * psi|^2> plus <(x * phi - mean)^2>, by direct FFTs."""
+    bank = wavelet_bank(x.shape, J, L)
+    xf = np.fft.fft2(x - x.mean())
+    w = np.fft.ifft2(xf[None, None] * bank.psi)
+    low = np.fft.ifft2(xf * bank.phi).real
+    return float(np.sum(np.mean(np.abs(w) ** 2, axis=(-2, -1))) + np.mean(low**2))
+
+
+def test_littlewood_paley_bound_on_plane_waves():
+    # A plane wave cos(w.u) has all its power at +-w, so by Parseval the wavelet-plus-low-pass
+    # energy over its variance equals the Littlewood-Paley sum A(w) (wavelets.py docstring):
+    # this checks the bound against an independent computation of each filter's response.
+    n, J, L = 32, 4, 4
+    bank = wavelet_bank((n, n), J, L)
+    lo, hi = bank.lp_bounds
+    yy, xx = np.meshgrid(np.arange(n), np.arange(n), indexing="ij")
+    for ky, kx in [(1, 0), (0, 3), (5, 7), (11, -4), (16, 16), (16, 0), (-9, 13)]:
+        wave = np.cos(2 * np.pi * (ky * yy + kx * xx) / n)
+        ratio = _s11_sum(wave, J, L) / np.var(wave)
+        assert ratio == pytest.approx(bank.lp_sum[ky % n, kx % n], rel=1e-9)
+        assert lo - 1e-12 <= ratio <= hi + 1e-12
+
+
+def test_littlewood_paley_bounds_are_a_frame():
+    # The bank is scaled to max A = 1. Inside the disk |w| < pi the dyadic bumps overlap
+    # enough to keep A above 0.4 (our design value ~0.45, wavelets.py SIGMA_PHI); the
+    # lowest value anywhere is at the corner of the Fourier square and must stay positive
+    # (a frame: no frequency is lost).
+    for shape, J, L in [((32, 32), 4, 4), ((64, 64), 5, 8), ((64, 64), 5, 4)]:
+        bank = wavelet_bank(shape, J, L)
+        lo, hi = bank.lp_bounds
+        assert hi == pytest.approx(1.0, abs=1e-12)
+        assert lo > 0.05
+        f = 2 * np.pi * np.fft.fftfreq(shape[0])
+        r = np.hypot(*np.meshgrid(f, f, indexing="ij"))
+        inner = bank.lp_sum[(r < np.pi) & (r > 0)]
+        assert inner.min() > 0.4
+        # The angular part is exactly flat (sum_l cos^(2m)(phi - l pi/L) is constant for
+        # m < L): on a ring the sum varies only through the discrete grid's radii.
+        ring = np.abs(r - 0.5 * np.pi) < 0.02
+        assert np.ptp(bank.lp_sum[ring]) < 0.05
+
+
+def test_s11_sum_matches_variance_within_the_bound(rng):
+    # Parseval: sum_lambda S11(tau=0) + low-pass variance = (1/N^2) sum_w |x_hat|^2 A(w), so
+    # it lies between A_min and A_max times the variance (wavelets.py docstring).
+    x = _smooth_field(rng, n=32, c=1)[0]
+    J, L = 4, 4
+    bank = wavelet_bank(x.shape, J, L)
+    lo, hi = bank.lp_bounds
+    var = np.var(x)
+    wph = WPHStatistics(x.shape, WPHConfig(J=J, L=L, delta_n=0), channels=1)
+    stats = wph.forward(x[None])  # raw moments (normalization 1 without a reference)
+    s11 = sum(float(t[0].real.sum()) for t in stats["S11"])  # delta_n = 0: tau = 0 only
+    low = float(stats["L"][1][0].real.sum())  # low-pass variance
+    total = s11 + low
+    assert total == pytest.approx(_s11_sum(x, J, L), rel=1e-5)  # float32 statistics
+    assert lo * var <= total <= hi * var
+
+
+def test_bank_is_cached_and_checks_its_arguments():
+    assert wavelet_bank((32, 32), 3, 4) is wavelet_bank((32, 32), 3, 4)
+    with pytest.raises(ValueError, match="smaller than 2\\^J"):
+        wavelet_bank((16, 16), 5, 4)
+    with pytest.raises(ValueError, match="L \\(orientations"):
+        wavelet_bank((32, 32), 3, 1)
+    with pytest.raises(ValueError, match="L \\(orientations"):
+        wavelet_bank((32, 32), 3, 17)
+    with pytest.raises(ValueError, match="J \\(number"):
+        wavelet_bank((32, 32), 0, 4)
+    with pytest.raises(ValueError, match="delta_l"):
+        WPHConfig(J=3, L=4, delta_l=4).validate((32, 32))
+
+
+@pytest.fixture(scope="module")
+def wph_and_map():
+    x = _smooth_field(np.random.default_rng(7), n=32, c=2)
+    cfg = WPHConfig(J=4, L=4, delta_j=2, delta_l=1, delta_n=1)
+    return WPHStatistics((32, 32), cfg, channels=2, reference=x, dtype=torch.float64), x
+
+
+def test_translation_invariance(wph_and_map):
+    # Periodic convolutions commute with whole-pixel shifts and the moments average over
+    # positions, so they are exactly invariant (up to float64 round-off).
+    wph, x = wph_and_map
+    m = wph.moments(x)
+    for shift in [(1, 0), (0, 5), (-7, 11), (16, 16)]:
+        ms = wph.moments(np.roll(x, shift, axis=(-2, -1)))
+        np.testing.assert_allclose(ms.numpy(), m.numpy(), atol=1e-10, rtol=0)
+
+
+def test_rotation_by_180_degrees(wph_and_map):
+    # x(u) -> x(-u) maps W(u) to conj(W(-u)) because psi_hat is real, so every moment goes
+    # to conj(M(-tau)) (wph.py docstring). Q and U keep their signs under a 180-degree
+    # rotation (spin 2: e^{2i pi} = 1; REFERENCES.md, "Patch symmetries").
+    wph, x = wph_and_map
+    rot = np.roll(x[:, ::-1, ::-1], (1, 1), axis=(-2, -1))  # u -> -u modulo n
+    s, sr = wph.forward(x), wph.forward(rot)
+    pred = wph.flatten(wph.rotate180(s))
+    np.testing.assert_allclose(wph.flatten(sr).numpy(), pred.numpy(), atol=1e-10, rtol=0)
+    # The auto-covariance families over half-plane shifts are invariant as they are.
+    for fam in ("S11", "S00"):
+        for a, b, tag in zip(s[fam], sr[fam], wph._tags[fam], strict=True):
+            if tag == "inv":
+                np.testing.assert_allclose(b.numpy(), a.numpy(), atol=1e-10, rtol=0)
+    # The tau = 0 cross-scale moments keep their modulus (they are conjugated).
+    for fam in ("C01", "Cphase"):
+        for a, b in zip(s[fam], sr[fam], strict=True):
+            np.testing.assert_allclose(b.abs().numpy(), a.abs().numpy(), atol=1e-10, rtol=0)
+
+
+def test_target_normalization_and_counts(wph_and_map):
+    wph, x = wph_and_map
+    s = wph.forward(x)
+    # Auto S11 at tau = 0 of the reference is <|W|^2> / sigma_1^2 = 1 by construction.
+    for t in s["S11"][::2]:
+        np.testing.assert_allclose(t[..., 0].real.numpy(), 1.0, rtol=1e-10)
+    counts = wph.count()
+    assert counts["total"] == wph.moments(x).shape[1]
+    assert counts["total"] == sum(v for k, v in counts.items() if k != "total")
+    # S01: 4 channel pairs x L orientations x (5 shifts at j < 3, 5 at j = 3 within 16 px).
+    assert counts["S01"] == 4 * 4 * 5 * 4
+    # Cphase: (J - 1) + (J - 2) scale pairs x L orientations x 4 channel pairs.
+    assert counts["Cphase"] == (3 + 2) * 4 * 4
+
+
+def test_gradcheck_float64_tiny_map():
+    # torch.autograd.gradcheck compares the analytic gradient with central differences.
+    rng = np.random.default_rng(3)
+    ref = _smooth_field(rng, n=8, c=2)
+    wph = WPHStatistics(
+        (8, 8), WPHConfig(J=2, L=2, delta_j=1, delta_l=1, delta_n=1), 2, ref, dtype=torch.float64
+    )
+    x = torch.tensor(_smooth_field(rng, n=8, c=2)[None], dtype=torch.float64, requires_grad=True)
+
+    def f(inp):
+        m = wph.moments(inp)
+        return torch.cat([m.real, m.imag], dim=1)
+
+    assert torch.autograd.gradcheck(f, (x,), eps=1e-6, atol=1e-5, rtol=1e-4)
+
+
+def test_batch_equals_single(wph_and_map):
+    wph, x = wph_and_map
+    y = np.stack([x, np.roll(x, 3, axis=-1) ** 2])
+    both = wph.moments(y)
+    np.testing.assert_allclose(both[1:].numpy(), wph.moments(y[1]).numpy(), atol=1e-12)
