@@ -20,6 +20,7 @@ from lightning.pytorch.callbacks import EarlyStopping, ModelCheckpoint, TQDMProg
 from omegaconf import DictConfig, OmegaConf
 
 from skymoments.moments.data import MomentsDataModule, stream_generator
+from skymoments.moments.distributed import with_job_ddp
 from skymoments.moments.perf import DataWaitTimer
 from skymoments.moments.stages import MeanModule, VarianceModule
 from skymoments.nets import ChannelScaler, PosteriorMoments, build_network
@@ -88,6 +89,8 @@ class MomentsResult:
 def _trainer_kwargs(cfg_trainer) -> dict:
     kwargs = instantiate(cfg_trainer, _convert_="all") if cfg_trainer is not None else {}
     kwargs = dict(kwargs or {})
+    # strategy "ddp" relaunches the other ranks as this Hydra job (moments/distributed.py).
+    kwargs = with_job_ddp(kwargs)
     for key in RESERVED_TRAINER_KEYS:
         if key in kwargs:
             raise ValueError(
@@ -177,7 +180,8 @@ def train_moments(
         Uses ``cfg.seed``, ``cfg.model`` (``mean``, ``variance`` network nodes,
         ``positivity``, optional ``eps``), ``cfg.train`` (batch_size, steps_per_epoch,
         n_val, max_epochs_mean, max_epochs_var, patience, num_workers, optimizer,
-        scheduler, fit_scalers_n, gradient_clip_val, optional val_batch_size) and
+        scheduler, fit_scalers_n, gradient_clip_val, optional val_batch_size and
+        torch_threads) and
         ``cfg.trainer`` (Lightning Trainer keyword arguments).
     train_scenario, val_scenario : skymoments.sky.Scenario
         Training draws (foreground from the bank or the generator) and validation draws
@@ -201,6 +205,15 @@ def train_moments(
     tr = cfg.train
     t_start = time.perf_counter()
 
+    threads = tr.get("torch_threads")
+    if threads is not None:
+        if isinstance(threads, bool) or not isinstance(threads, int) or threads < 1:
+            raise ValueError(
+                f"train.torch_threads must be a positive integer or null, got {threads!r}"
+            )
+        # Process-wide: on a small shared CPU, fewer intra-op threads than cores avoids
+        # oversubscription (see experiments/data_pipeline/README.md).
+        torch.set_num_threads(threads)
     input_scaler, target_scaler = fit_scalers(train_scenario, int(tr.fit_scalers_n), seed)
     torch.manual_seed(torch_seed(seed, "init"))
     mean_net = build_network(cfg.model.mean, key="model.mean")
