@@ -23,7 +23,7 @@ the best params and gets that file as an artifact.
 """
 
 import logging
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -48,7 +48,6 @@ class TrialsSweeperConf:
     seed: int | None = 0
     storage: str | None = None
     study_name: str | None = None
-    extra: dict[str, Any] = field(default_factory=dict)
 
 
 ConfigStore.instance().store(
@@ -79,7 +78,6 @@ class TrialsSweeper(Sweeper):
         seed: int | None = 0,
         storage: str | None = None,
         study_name: str | None = None,
-        extra: Any = None,
     ) -> None:
         def plain(node: Any) -> Any:
             return OmegaConf.to_container(node, resolve=True) if OmegaConf.is_config(node) else node
@@ -92,7 +90,6 @@ class TrialsSweeper(Sweeper):
         self.seed = seed
         self.storage = storage
         self.study_name = study_name
-        self.extra = plain(extra) or {}
         self.config: DictConfig | None = None
         self.hydra_context: HydraContext | None = None
         self.launcher = None
