@@ -1,0 +1,56 @@
+"""`skymoments synthesize` writes the documented bank and tracks the run."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+
+def _filaments_image(n=32, seed=3):
+    from skymoments.maps.geometry import FlatPatch
+    from skymoments.sky.foregrounds import make_foreground
+
+    return make_foreground("filaments").draw(FlatPatch(n, 3.0), np.random.default_rng(seed), 1)[0]
+
+
+@pytest.mark.slow
+def test_synthesize_writes_bank_and_reuses_it(tmp_path):
+    np.save(tmp_path / "img.npy", _filaments_image())
+    args = [
+        sys.executable, "-m", "skymoments.cli", "synthesize",
+        f"synthesis.image={tmp_path / 'img.npy'}", "synthesis.n_images=3",
+        f"synthesis.out={tmp_path / 'banks'}", "synthesis.max_iter=10", "synthesis.J=4",
+        "synthesis.threads=1", "patch=flat32", f"tracking.root={tmp_path / 'runs'}",
+    ]  # fmt: skip
+    proc = subprocess.run(args, cwd=tmp_path, capture_output=True, text=True, timeout=600)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    npz = list((tmp_path / "banks").glob("bank-*.npz"))
+    assert len(npz) == 1
+    with np.load(npz[0]) as f:
+        assert f["images"].shape == (3, 2, 32, 32)
+    meta = json.loads(npz[0].with_suffix(".json").read_text())
+    assert meta["settings"]["n_images"] == 3 and meta["source"].endswith("img.npy")
+    assert "synth/ks_pix" in proc.stderr and "perf/synthesis_s_per_image" in proc.stderr
+    # The same command again reuses the bank.
+    proc = subprocess.run(args, cwd=tmp_path, capture_output=True, text=True, timeout=600)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    assert "reused" in proc.stderr
+    assert len(list((tmp_path / "banks").glob("bank-*.npz"))) == 1
+
+
+@pytest.mark.slow
+def test_bad_setting_is_refused_before_work(tmp_path):
+    np.save(tmp_path / "img.npy", _filaments_image())
+    args = [
+        sys.executable, "-m", "skymoments.cli", "synthesize",
+        f"synthesis.image={tmp_path / 'img.npy'}", "synthesis.J=9", "patch=flat32",
+        f"synthesis.out={tmp_path / 'banks'}", f"tracking.root={tmp_path / 'runs'}",
+    ]  # fmt: skip
+    proc = subprocess.run(args, cwd=tmp_path, capture_output=True, text=True, timeout=600)
+    assert proc.returncode != 0
+    assert "2^J" in proc.stderr
+    assert not (tmp_path / "banks").exists() or not list((tmp_path / "banks").glob("*.npz"))
