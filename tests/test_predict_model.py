@@ -134,7 +134,9 @@ def test_healpix_prediction_covers_the_region(logged, tmp_path):
 
     nside, nside_out = 64, 256
     tqu = synfast_tqu(_cls(), nside, seed=7)
-    path = write_healpix_map(tmp_path / "sky.fits", tqu, column_names=("T", "Q", "U"))
+    path = write_healpix_map(
+        tmp_path / "sky.fits", tqu, column_names=("T", "Q", "U"), extra_header=[("COORDSYS", "G")]
+    )
     # Two patches that overlap by half their width (16 x 1 deg each).
     centres = [[30.0, -40.0], [38.0, -40.0]]
     cfg = make_cfg(
@@ -216,7 +218,7 @@ def test_healpix_prediction_covers_the_region(logged, tmp_path):
             and head["NSIDE"] == nside_out
             and head["INNSIDE"] == nside
         )
-        assert (head["CLON1"], head["CLAT1"]) == (38.0, -40.0)
+        assert (head["CLON1"], head["CLAT1"]) == (38.0, -40.0) and head["COORDSYS"] == "G"
     with fits.open(out / "posterior.fits") as hdul:
         assert hdul[0].header["CLON0"] == 30.0 and hdul[0].header["INFORMAT"] == "healpix"
 

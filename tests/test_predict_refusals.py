@@ -320,6 +320,7 @@ def test_a_failed_write_leaves_no_partial_files(store, tmp_path, fake_loader, mo
     assert failed and "disk full" in failed[-1].data.tags["skymoments.error"]
 
 
+@pytest.mark.slow  # three predictions, each drawing its quick-look figure
 def test_force_replaces_outputs(store, tmp_path, fake_loader):
     np.save(tmp_path / "qu.npy", make_qu())
     args = dict(
@@ -330,6 +331,12 @@ def test_force_replaces_outputs(store, tmp_path, fake_loader):
         pipeline.run_prediction(make_cfg(store, tmp_path, **args))
     again = pipeline.run_prediction(make_cfg(store, tmp_path, force=True, **args))
     assert again.prediction_run_id is None and first.paths == again.paths
+    # experiment=null logs the prediction next to the model's training run.
+    args.update(log_run=True, experiment=None)
+    third = pipeline.run_prediction(make_cfg(store, tmp_path, force=True, **args))
+    client = MlflowClient(store["uri"])
+    run = client.get_run(third.prediction_run_id)
+    assert client.get_experiment(run.info.experiment_id).name == "training"
 
 
 # --- the command -------------------------------------------------------------------------

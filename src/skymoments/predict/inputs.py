@@ -111,6 +111,9 @@ class MapInput:
         Where the pixel size came from, for messages.
     convention : str
         The Q/U convention of the file as read (``patch``, ``COSMO``, ``IAU``).
+    coordsys : str or None
+        HEALPix input: the file's ``COORDSYS`` (``G``, ``C``, ``E``), the frame of the
+        centres' (lon, lat).
     notes : list of str
         What reading did (mirrored axes, unit conversions), for the provenance.
     """
@@ -124,6 +127,7 @@ class MapInput:
     pixel_arcmin: float | None = None
     pixel_source: str = ""
     convention: str = "patch"
+    coordsys: str | None = None
     notes: list[str] = field(default_factory=list)
 
 
@@ -543,7 +547,7 @@ def read_healpix_input(path: str | os.PathLike, fields=("Q", "U"), hdu: int = 1)
     import healpy as hp
     from astropy.io import fits
 
-    from skymoments.maps.healpix import UNSEEN, read_healpix_map
+    from skymoments.maps.healpix import read_healpix_map
 
     p = Path(path)
     fields = tuple(fields)
@@ -553,9 +557,11 @@ def read_healpix_input(path: str | os.PathLike, fields=("Q", "U"), hdu: int = 1)
         )
     maps = read_healpix_map(p, fields=fields, convention="COSMO", hdu=int(hdu), units="uK")
     with fits.open(p) as hdul:
-        raw = hdul[int(hdu)].header.get("POLCCONV", hdul[0].header.get("POLCCONV"))
+        head, primary = hdul[int(hdu)].header, hdul[0].header
+        raw = head.get("POLCCONV", primary.get("POLCCONV"))
+        coordsys = head.get("COORDSYS", primary.get("COORDSYS"))
     conv = "COSMO" if raw is None else str(raw).strip().upper()
-    n_unseen = int(np.count_nonzero(hp.mask_bad(maps) | (maps == UNSEEN)))
+    n_unseen = int(np.count_nonzero(hp.mask_bad(maps)))
     if n_unseen:
         raise ValueError(
             f"{p} has {n_unseen} UNSEEN (masked) pixels in its Q/U columns; cutting patches "
@@ -570,6 +576,7 @@ def read_healpix_input(path: str | os.PathLike, fields=("Q", "U"), hdu: int = 1)
         maps_qu=maps,
         nside=int(nside),
         convention=conv,
+        coordsys=None if coordsys is None else str(coordsys).strip(),
         notes=notes,
     )
 

@@ -101,9 +101,9 @@ def provenance_cards(prov: Mapping[str, Any]) -> list[tuple[str, Any, str]]:
     """Standard 8-character FITS cards for the provenance dict of a prediction.
 
     Keys used: ``MODELURI``, ``MODELREF``, ``MODELNAM``, ``MODELVER``, ``MODELRUN``,
-    ``INPUT``, ``INSHA256``, ``INFORMAT``, ``QUCONV``, ``INNSIDE``, ``PREDRUN``, and per patch
-    ``CLONi``/``CLATi`` (centre, deg) for HEALPix cuts. Long strings use FITS's CONTINUE
-    convention (astropy).
+    ``INPUT``, ``INSHA256``, ``INFORMAT``, ``QUCONV``, ``INNSIDE``, ``COORDSYS``,
+    ``PREDRUN``, and per patch ``CLONi``/``CLATi`` (centre, deg) for HEALPix cuts. Long
+    strings use FITS's CONTINUE convention (astropy).
     """
     spec = (
         ("MODELURI", "model_uri", "MLflow model URI"),
@@ -116,6 +116,7 @@ def provenance_cards(prov: Mapping[str, Any]) -> list[tuple[str, Any, str]]:
         ("INFORMAT", "input_format", "array, image or healpix"),
         ("QUCONV", "input_convention", "Q/U convention of the input"),
         ("INNSIDE", "nside", "HEALPix resolution of the input map"),
+        ("COORDSYS", "coordsys", "coordinates of the input map and centres"),
         ("PREDRUN", "prediction_run_id", "MLflow run of this prediction"),
     )
     cards = []

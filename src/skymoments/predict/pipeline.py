@@ -264,6 +264,8 @@ def _provenance(source: ModelSource, inp: MapInput, centres, nside_out) -> dict[
         prov["pixel_source"] = inp.pixel_source
     if inp.notes:
         prov["input_notes"] = "; ".join(inp.notes)
+    if inp.coordsys:
+        prov["coordsys"] = inp.coordsys
     if centres is not None:
         prov["centres"] = [[float(a), float(b)] for a, b in centres]
         prov["nside"] = int(inp.nside)
@@ -277,11 +279,17 @@ def _device(name: str):
     if name == "auto":
         return torch.device("cuda" if torch.cuda.is_available() else "cpu")
     try:
-        return torch.device(name)
+        device = torch.device(name)
     except (RuntimeError, TypeError) as exc:
         raise ValueError(
             f"predict.device={name!r} is not a torch device (cpu, cuda, auto)"
         ) from exc
+    if device.type == "cuda" and not torch.cuda.is_available():
+        raise ValueError(
+            f"predict.device={name!r} but torch sees no CUDA device here; use predict.device=cpu "
+            "(or auto)"
+        )
+    return device
 
 
 def _load(source: ModelSource, tracking: Any):
