@@ -1,10 +1,9 @@
 """A small all-Gaussian scenario with the Scenario draw API, for the moments tests.
 
 Signal: isotropic Gaussian E and B with power-law spectra; data: the signal's Q/U plus
-white noise in Q and U. With fixed amplitudes the posterior mean of E/B given the data is
-the per-mode Wiener filter ``S / (S + N) d`` in Fourier E/B (standard Gaussian
-conditioning; REFERENCES.md "Wiener filter", Elsner & Wandelt 2013, arXiv:1210.4931).
-``amp_range`` draws a per-map signal amplitude, like a prior on the scenario's amplitudes.
+white noise in Q and U. No CAMB call, so the plumbing tests stay fast; the Wiener check
+uses the real ``skymoments.sky`` Scenario. ``amp_range`` draws a per-map signal
+amplitude, like a prior on the scenario's amplitudes.
 """
 
 from __future__ import annotations
@@ -15,7 +14,6 @@ import numpy as np
 import torch
 
 from skymoments.maps import FlatPatch, eb_to_qu
-from skymoments.maps.eb import qu_to_eb_fourier
 from skymoments.sky.gaussian import gaussian_eb
 from skymoments.sky.seeds import as_generator
 
@@ -85,11 +83,3 @@ class GaussianToyScenario:
             f = lambda a: torch.as_tensor(a, dtype=torch.float32)  # noqa: E731
             out = ToyDraw(f(data), f(eb), f(amp[:, None]), self.param_names)
         return out
-
-    def wiener_mean(self, data_qu):
-        """Exact posterior mean of E/B at amplitude 1: ``S/(S+N)`` per Fourier mode."""
-        ebf = qu_to_eb_fourier(np.asarray(data_qu, dtype=float), self.patch)
-        filt = np.stack(
-            [self._s_ee / (self._s_ee + self._noise), self._s_bb / (self._s_bb + self._noise)]
-        )
-        return np.fft.ifft2(ebf * filt).real
