@@ -124,7 +124,7 @@ def _check_model(cfg: DictConfig) -> None:
         node = cfg.model.get(stage)
         if node is None:
             raise ConfigError(f"model.{stage} is missing; pick a model, e.g. model=unet")
-        for key in ("width", "depth", "blocks", "modes", "channels"):
+        for key in ("width", "depth", "n_blocks", "n_layers", "modes"):
             if key in node and not (isinstance(node[key], int) and node[key] > 0):
                 raise ConfigError(
                     f"model.{stage}.{key} must be a positive integer, got {node[key]!r}"
