@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import logging
 import sys
 
 from omegaconf import DictConfig
@@ -25,6 +26,7 @@ def print_summary(result) -> None:
     """A short table: patches, posterior amplitudes, files written, tracking run."""
     import numpy as np
     from rich.console import Console
+    from rich.markup import escape
     from rich.table import Table
 
     console = Console()
@@ -36,8 +38,9 @@ def print_summary(result) -> None:
     )
     table = Table(title=title, title_justify="left")
     table.add_column("")
-    table.add_column("E [uK]", justify="right")
-    table.add_column("B [uK]", justify="right")
+    # Brackets are rich markup: escape the unit.
+    table.add_column(escape("E [uK]"), justify="right")
+    table.add_column(escape("B [uK]"), justify="right")
     rms = np.sqrt(np.mean(result.mean_eb**2, axis=(0, 2, 3)))
     med = np.median(result.std_eb, axis=(0, 2, 3))
     table.add_row("rms of the posterior mean", f"{rms[0]:.4g}", f"{rms[1]:.4g}")
@@ -52,6 +55,9 @@ def print_summary(result) -> None:
 @hydra_task
 def main(cfg: DictConfig) -> None:
     from skymoments.tracking import TrackingUnavailableError
+
+    # healpy reports every smoothing it does at INFO, which Hydra's logging would print.
+    logging.getLogger("healpy").setLevel(logging.WARNING)
 
     try:
         validate(cfg)
