@@ -41,26 +41,13 @@ def job_dir() -> Path:
     return Path.cwd()
 
 
-def training_image(cfg: DictConfig, patch) -> np.ndarray:
-    """The single foreground image training may use, shape (2, npix, npix), uK.
+def training_foreground(cfg: DictConfig, image: np.ndarray, run):
+    """The training foreground as ``augment`` selects; None means the generator itself.
 
-    ``synthesis.image`` when given (a file); otherwise one draw of ``sky.foreground`` from
-    the dedicated ``training_image`` seed stream, never reused for validation.
+    ``single_image``: the one training image, enlarged into a WPH bank when
+    ``augment.bank`` (built or reused by :func:`skymoments.synthesis.pipeline.run_synthesis`,
+    its quality metrics logged into this run), rotated and flipped when ``augment.symmetries``.
     """
-    if cfg.synthesis.get("image"):
-        from skymoments.synthesis.sources import load_training_image
-
-        return load_training_image(cfg, patch)
-    from skymoments.sky.build import foreground_from_config
-    from skymoments.sky.seeds import streams
-
-    rng = streams(int(cfg.seed), "training_image")["training_image"]
-    fg = foreground_from_config(cfg.sky.foreground)
-    return fg.draw(patch, rng, 1)[0]
-
-
-def training_foreground(cfg: DictConfig, patch, image: np.ndarray, run):
-    """The training foreground as ``augment`` selects; None means the generator itself."""
     from skymoments.sky.foregrounds import ImageBank
 
     aug = cfg.augment
@@ -70,15 +57,14 @@ def training_foreground(cfg: DictConfig, patch, image: np.ndarray, run):
         raise ValueError(f"augment.source={aug.source!r}; choose single_image or generator")
     images = image[None]
     if aug.bank:
-        from skymoments.synthesis.bank import ensure_bank
+        from skymoments.synthesis.pipeline import log_bank, progress_bar, run_synthesis
 
         t0 = time.perf_counter()
-        bank = ensure_bank(image, cfg.synthesis, seed=int(cfg.seed))
-        images = np.concatenate([images, bank.images], axis=0)
+        with progress_bar(int(cfg.synthesis.max_iter)) as progress:
+            out = run_synthesis(cfg, progress=progress)
         run.log_metrics({"perf/bank_s": time.perf_counter() - t0})
-        run.set_tags({"bank_path": str(bank.path), "bank_reused": str(bank.reused)})
-        if bank.metadata.get("s_per_image") is not None:
-            run.log_metrics({"perf/synthesis_s_per_image": float(bank.metadata["s_per_image"])})
+        log_bank(run, out)
+        images = np.concatenate([images, out["images"]], axis=0)
     return ImageBank(images, symmetries=bool(aug.symmetries))
 
 
@@ -110,16 +96,15 @@ def baselines(cfg: DictConfig, scenario, image: np.ndarray):
 
 def run_study(cfg: DictConfig, run) -> dict[str, float]:
     """Train, evaluate and log one study into the open tracked ``run``; return its metrics."""
-    from skymoments.maps import FlatPatch
     from skymoments.moments.pipeline import train_moments
     from skymoments.sky.build import scenario_from_config
     from skymoments.sky.seeds import streams
+    from skymoments.synthesis.pipeline import training_image
 
     out = job_dir()
-    patch = FlatPatch(int(cfg.patch.npix), float(cfg.patch.pixel_arcmin))
     val_scenario = scenario_from_config(cfg)
-    image = training_image(cfg, patch)
-    fg = training_foreground(cfg, patch, image, run)
+    image, _, _ = training_image(cfg)
+    fg = training_foreground(cfg, image, run)
     train_scenario = scenario_from_config(training_config(cfg), foreground=fg)
 
     result = train_moments(

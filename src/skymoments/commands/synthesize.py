@@ -12,181 +12,29 @@ syntheses.
 
 from __future__ import annotations
 
-from pathlib import Path
-
-import numpy as np
-from omegaconf import DictConfig, OmegaConf
+from omegaconf import DictConfig
 
 from skymoments.commands._entry import hydra_task
 from skymoments.config import validate
-
-MOSAIC_COLUMNS = 4
-
-
-def settings_from_config(node):
-    """:class:`SynthesisSettings` from the ``synthesis`` config node (ValueError if bad)."""
-    from skymoments.synthesis.synthesize import SynthesisSettings
-
-    data = OmegaConf.to_container(node, resolve=True) if isinstance(node, DictConfig) else node
-    keys = ("n_images", "J", "L", "delta_n", "delta_j", "delta_l", "max_iter", "tol", "batch")
-    kw = {k: data[k] for k in keys if data.get(k) is not None}
-    if "tol" in kw:
-        kw["tol"] = float(kw["tol"])
-    kw["boundary"] = str(data.get("boundary", "periodic"))
-    settings = SynthesisSettings(**kw)
-    settings.validate()
-    return settings
-
-
-def training_image(cfg: DictConfig):
-    """The training image (2, n, n) and a description of its source.
-
-    ``synthesis.image`` when given; otherwise one draw of ``sky.foreground`` from the
-    ``training_image`` seed stream.
-    """
-    from skymoments.maps.geometry import FlatPatch
-    from skymoments.synthesis.sources import load_training_image
-
-    node = cfg.synthesis
-    patch = FlatPatch(int(cfg.patch.npix), float(cfg.patch.pixel_arcmin))
-    if node.get("image"):
-        img = load_training_image(
-            str(node.image),
-            key=node.get("image_key"),
-            lon_deg=node.get("lon_deg"),
-            lat_deg=node.get("lat_deg"),
-            patch=patch,
-        )
-        return img, str(Path(str(node.image)).expanduser().resolve()), patch
-    from skymoments.sky.build import foreground_from_config
-    from skymoments.sky.seeds import stream
-
-    fg = foreground_from_config(cfg.sky.foreground)
-    img = fg.draw(patch, stream(int(cfg.seed), "training_image"), 1)[0]
-    return img, f"sky.foreground draw (seed {int(cfg.seed)}, stream training_image)", patch
-
-
-def mosaic_figure(target: np.ndarray, images: np.ndarray, columns: int = MOSAIC_COLUMNS):
-    """Q and U of the target (first column) beside the first syntheses, one colour scale."""
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    k = min(columns, len(images))
-    fig, axes = plt.subplots(2, k + 1, figsize=(2.2 * (k + 1), 4.6), squeeze=False)
-    for row, name in enumerate(("Q", "U")):
-        lim = float(np.max(np.abs(target[row])))
-        panels = [("target", target[row])] + [(f"synth {i}", images[i, row]) for i in range(k)]
-        for col, (title, m) in enumerate(panels):
-            ax = axes[row, col]
-            ax.imshow(m, origin="lower", cmap="RdBu_r", vmin=-lim, vmax=lim)
-            ax.set_title(f"{title} {name}", fontsize=8)
-            ax.set_xticks([])
-            ax.set_yticks([])
-    fig.tight_layout()
-    return fig
-
-
-def evaluate(target, images, patch, seed: int, truth=None) -> dict[str, float]:
-    """The ``synth/...`` metrics, with the Gaussian surrogate, vs target and vs truth."""
-    from skymoments.sky.seeds import stream
-    from skymoments.synthesis.quality import gaussian_surrogate, quality_metrics
-
-    gauss = gaussian_surrogate(target, len(images), stream(int(seed), "synthesis_surrogate"))
-    metrics = quality_metrics(images, target, patch, surrogate=gauss, prefix="synth/")
-    if truth is not None and len(truth):
-        metrics.update(quality_metrics(images, truth, patch, gauss, prefix="synth/truth_"))
-    return metrics
-
-
-def run_synthesis(cfg: DictConfig, progress=None) -> dict:
-    """Build (or reuse) the bank described by ``cfg`` and compute its quality metrics.
-
-    Returns
-    -------
-    dict with ``path``, ``images``, ``metadata``, ``target``, ``metrics``, ``patch``.
-    """
-    import torch
-
-    from skymoments.synthesis.bank import ensure_bank
-
-    node = cfg.synthesis
-    settings = settings_from_config(node)
-    if node.get("threads"):
-        torch.set_num_threads(int(node.threads))
-    target, source, patch = training_image(cfg)
-    seed = int(node.seed)
-    path, images, meta = ensure_bank(
-        target, settings, node.get("out"), seed=seed, progress=progress, source=source
-    )
-    truth = None
-    n_truth = int(node.get("truth_draws") or 0)
-    if not node.get("image") and n_truth > 0 and target.shape[-1] == patch.npix:
-        from skymoments.sky.build import foreground_from_config
-        from skymoments.sky.seeds import stream
-
-        fg = foreground_from_config(cfg.sky.foreground)
-        truth = fg.draw(patch, stream(int(cfg.seed), "synthesis_truth"), n_truth)
-    metrics = {}
-    if target.shape[0] == 2:
-        metrics = evaluate(target, images, patch, seed, truth)
-    metrics["perf/synthesis_s_per_image"] = float(meta["seconds_per_image"])
-    metrics["synth/loss_mean"] = float(np.mean(meta["loss"]))
-    return {
-        "path": path,
-        "images": images,
-        "metadata": meta,
-        "target": target,
-        "metrics": metrics,
-        "patch": patch,
-    }
-
-
-def _flat_settings(cfg: DictConfig) -> dict:
-    node = OmegaConf.to_container(cfg.synthesis, resolve=True)
-    return {f"synthesis.{k}": v for k, v in node.items()}
 
 
 @hydra_task
 def main(cfg: DictConfig) -> None:
     """Hydra task of ``skymoments synthesize``."""
     from rich.console import Console
-    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
+    from skymoments.synthesis.pipeline import flat_settings, log_bank, progress_bar, run_synthesis
     from skymoments.tracking import tracked_run
 
     validate(cfg, command="synthesis")
     console = Console(stderr=True)
     with tracked_run(cfg, run_name="synthesize") as run:
         run.log_config(cfg)
-        run.log_params(_flat_settings(cfg))
-        with Progress(
-            TextColumn("[bold]synthesis[/] batch {task.fields[batch]}"),
-            BarColumn(),
-            TextColumn("iter {task.completed:.0f}/{task.total:.0f}"),
-            TextColumn("loss {task.fields[loss]:.4g}"),
-            TimeElapsedColumn(),
-            console=console,
-            transient=False,
-        ) as bar:
-            task = bar.add_task("synth", total=int(cfg.synthesis.max_iter), batch="-", loss=0.0)
-
-            def progress(info: dict) -> None:
-                bar.update(
-                    task,
-                    completed=info["iteration"],
-                    total=info["max_iter"],
-                    batch=f"{min(info['batch'] + 1, info['n_batches'])}/{info['n_batches']}",
-                    loss=info["loss"],
-                )
-
+        run.log_params(flat_settings(cfg))
+        with progress_bar(int(cfg.synthesis.max_iter), console) as progress:
             out = run_synthesis(cfg, progress=progress)
+        log_bank(run, out)
         meta = out["metadata"]
-        run.log_metrics(out["metrics"])
-        run.log_params({"synthesis.bank_key": meta["key"], "synthesis.reused": meta["reused"]})
-        run.log_figure(mosaic_figure(out["target"], out["images"]), "plots/synthesis_mosaic.png")
-        run.log_artifact(out["path"].with_suffix(".json"), artifact_path="bank")
         state = "reused" if meta["reused"] else f"built in {meta['seconds']:.1f} s"
         console.print(f"bank {out['path']} ({out['images'].shape}, {state}); run {run.run_id}")
         for k in sorted(out["metrics"]):
