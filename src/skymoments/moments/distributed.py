@@ -28,8 +28,11 @@ from lightning.pytorch.strategies.launchers.subprocess_script import _Subprocess
 
 __all__ = ["JobDDPStrategy", "job_rank_command", "with_job_ddp"]
 
-# The ``skymoments`` entry point names the running subcommand in sys.argv[0].
+# Subcommands are Hydra tasks in skymoments.commands.<sub>; the entry point also names the
+# running subcommand in sys.argv[0] ("skymoments run").
+_COMMANDS_PREFIX = "skymoments.commands."
 _ENTRY_PREFIX = "skymoments "
+_RUN_JOB_FILE = os.path.join("hydra", "core", "utils.py")
 # Output folder of the job whose ranks this process launched (one job per process).
 _launched_for: str | None = None
 
@@ -41,13 +44,36 @@ def _quoted(value: str) -> str:
     raise ValueError(f"the job folder {value!r} holds both quote characters; rename it")
 
 
+def _task_module() -> str | None:
+    """The module of the running Hydra task function, read from Hydra's ``run_job`` frame.
+
+    Every launcher (basic, joblib, submitit) calls the task through
+    ``hydra.core.utils.run_job(task_function, ...)``, so that frame is on the stack while the
+    job runs, whatever process it runs in.
+    """
+    frame = sys._getframe(1)
+    while frame is not None:
+        code = frame.f_code
+        if code.co_name == "run_job" and code.co_filename.endswith(_RUN_JOB_FILE):
+            task = frame.f_locals.get("task_function")
+            return getattr(task, "__module__", None)
+        frame = frame.f_back
+    return None
+
+
 def _entry_command() -> list[str]:
-    """How this process was started, as a command that starts the same Hydra app."""
+    """A command that starts the running Hydra app again (the overrides are added after it).
+
+    ``python -m skymoments.cli <sub>`` for a skymoments subcommand (a task in
+    ``skymoments.commands.<sub>``), whichever launcher started this process; otherwise
+    Lightning's rule for one's own app: the ``__main__`` module or script.
+    """
+    module = _task_module() or ""
+    if module.startswith(_COMMANDS_PREFIX):
+        return [sys.executable, "-m", "skymoments.cli", module[len(_COMMANDS_PREFIX) :]]
     prog = sys.argv[0] if sys.argv else ""
     if prog.startswith(_ENTRY_PREFIX):
-        sub = prog[len(_ENTRY_PREFIX) :].strip()
-        return [sys.executable, "-m", "skymoments.cli", sub]
-    # A script or module of one's own: Lightning's rule, without the argv.
+        return [sys.executable, "-m", "skymoments.cli", prog[len(_ENTRY_PREFIX) :].strip()]
     import __main__
 
     spec = getattr(__main__, "__spec__", None)
