@@ -67,7 +67,13 @@ HEALTH_POLL_S = 0.5
 def _report(config: pytest.Config, text: str) -> None:
     """Write a line to the terminal even while output is captured."""
     reporter = config.pluginmanager.getplugin("terminalreporter")
-    if reporter is not None:
+    capture = config.pluginmanager.getplugin("capturemanager")
+    if reporter is None:
+        return
+    if capture is None:
+        reporter.write_line(f"[server fixture] {text}")
+        return
+    with capture.global_and_fixture_disabled():
         reporter.write_line(f"[server fixture] {text}")
 
 
