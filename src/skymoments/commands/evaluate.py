@@ -115,9 +115,11 @@ def rewrite_argv(args: list[str]) -> list[str]:
 def scenario_overrides(task_overrides) -> list[str]:
     """The overrides of a Hydra job that are meant for the evaluated scenario.
 
-    Drops this command's own keys (``evaluate.*``, ``tracking``, ``hydra.*``, ``name``).
+    Drops this command's own keys (``evaluate.*``, ``tracking``, ``hydra.*``, ``name``) and
+    the ``+``/``++`` that :func:`rewrite_argv` added (every key override is applied to the
+    training config whether or not the key exists there).
     """
-    return [o for o in map(str, task_overrides) if _root(o) not in COMMAND_ROOTS]
+    return [o.lstrip("+") for o in map(str, task_overrides) if _root(o) not in COMMAND_ROOTS]
 
 
 def _group_node(group: str, option: str) -> DictConfig:
