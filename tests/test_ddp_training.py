@@ -82,3 +82,24 @@ def test_ddp_job_in_a_submitit_sweep_is_one_child_run(tmp_path):
     assert not missing, missing
     job_dir = Path(child.data.tags["skymoments.output_dir"])
     assert (job_dir / "run_rank1.log").is_file()
+
+
+@pytest.mark.slow
+def test_basic_launcher_runs_one_ddp_job_and_refuses_a_second_in_the_same_process(tmp_path):
+    # Job 0 joins its own ranks even though argv holds the whole sweep. Job 1 runs in the
+    # same process, whose DDP process group is job 0's: it must fail with the advice, not
+    # hang, and the sweep must go on.
+    root = tmp_path / "store"
+    proc = _run(
+        tmp_path, "-m", "experiment=smoke", "trainer=ddp", "seed=0,1",
+        "trainer.enable_progress_bar=false", "train.num_workers=0", "train.steps_per_epoch=2",
+        "train.max_epochs_mean=1", "train.max_epochs_var=1", f"tracking.root={root}",
+    )  # fmt: skip
+    assert proc.returncode == 0, proc.stderr[-4000:]
+    client = mlflow.MlflowClient(tracking_uri=f"sqlite:///{root / 'mlflow.db'}")
+    runs = client.search_runs([e.experiment_id for e in client.search_experiments()])
+    children = {r.data.params["seed"]: r for r in runs if "mlflow.parentRunId" in r.data.tags}
+    assert sorted(children) == ["0", "1"] and len(runs) == 3
+    assert children["0"].info.status == "FINISHED"
+    assert children["1"].info.status == "FAILED"
+    assert "one process per job" in children["1"].data.tags["skymoments.error"]
