@@ -100,6 +100,7 @@ def run_study(cfg: DictConfig, run) -> dict[str, float]:
     from skymoments.sky.build import scenario_from_config
     from skymoments.sky.seeds import streams
     from skymoments.synthesis.pipeline import training_image
+    from skymoments.tracking import global_rank
 
     out = job_dir()
     val_scenario = scenario_from_config(cfg)
@@ -114,6 +115,9 @@ def run_study(cfg: DictConfig, run) -> dict[str, float]:
         logger=run.lightning_logger(),
         workdir=out / "checkpoints",
     )
+    if global_rank() != 0:
+        # Under DDP only rank zero evaluates and logs (the other ranks hold no MLflow run).
+        return {}
     run.log_metrics({k: float(v) for k, v in result.perf.items()})
 
     # Calibration is judged on a fresh set of independent generator draws: neither trained
@@ -216,7 +220,7 @@ def main(cfg: DictConfig) -> float | None:
             print_run_summary(run, metrics, keys=SUMMARY_KEYS)
         return objective(cfg, metrics)
 
-    return run_job_safely(job, cfg)
+    return run_job_safely(job, cfg, failed_value=float("nan"))
 
 
 def objective(cfg: DictConfig, metrics: dict[str, float]) -> float:
