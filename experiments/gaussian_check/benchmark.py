@@ -48,6 +48,7 @@ def main() -> int:
     ap.add_argument("overrides", nargs="*", help="extra Hydra overrides for the run")
     args = ap.parse_args()
     root = Path(args.root or tempfile.mkdtemp(prefix="gaussian_check-")).absolute()
+    root.mkdir(parents=True, exist_ok=True)
     cmd = [
         sys.executable,
         "-m",
