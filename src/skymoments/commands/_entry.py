@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import functools
 import logging
+import os
+import sys
 import warnings
 from collections.abc import Callable
 
@@ -37,6 +39,16 @@ def quiet_third_party() -> None:
         warnings.filterwarnings("ignore", message=pattern)
 
 
+def _expected_errors() -> tuple[type[BaseException], ...]:
+    from skymoments.config import ConfigError
+    from skymoments.tracking.store import TrackingUnavailableError
+
+    return (ConfigError, TrackingUnavailableError)
+
+
+EXPECTED_ERRORS = _expected_errors()
+
+
 def hydra_task(fn: Callable[[DictConfig], object]) -> Callable[[], object]:
     """Decorate ``fn(cfg)`` so that calling it parses ``sys.argv`` as Hydra overrides.
 
@@ -48,7 +60,15 @@ def hydra_task(fn: Callable[[DictConfig], object]) -> Callable[[], object]:
     @functools.wraps(fn)
     def task(cfg: DictConfig) -> object:
         quiet_third_party()
-        return fn(cfg)
+        try:
+            return fn(cfg)
+        except EXPECTED_ERRORS as err:
+            # Bad input and an unreachable server are the user's to fix: say what and how in
+            # one line, without a traceback (HYDRA_FULL_ERROR=1 shows it).
+            if os.environ.get("HYDRA_FULL_ERROR") == "1":
+                raise
+            print(f"skymoments: {err}", file=sys.stderr)
+            sys.exit(2)
 
     @functools.wraps(fn)
     def main() -> object:
