@@ -26,19 +26,6 @@ class PatchSchema:
 
 
 @dataclass
-class CMBSchema:
-    H0: float = 67.5
-    ombh2: float = 0.022
-    omch2: float = 0.122
-    As: float = 2.0e-9
-    ns: float = 0.965
-    tau: float = 0.06
-    lmax: int = 5000
-    nt: float = 0.0
-    lmax_tensor: int = 1500
-
-
-@dataclass
 class PriorSchema:
     dist: str = "fixed"
     value: float | None = None
@@ -80,10 +67,17 @@ def _check_patch(cfg: DictConfig) -> None:
 
 
 def _check_sky(cfg: DictConfig) -> None:
+    from skymoments.sky.cmb import CMBCosmology
     from skymoments.sky.foregrounds import FOREGROUNDS
 
     sky = cfg.sky
-    _typed(sky.cmb, CMBSchema, "sky.cmb")
+    # The cosmology's own dataclass is the schema: its fields type the node and its
+    # checks name the key (sky.cmb.H0 ...).
+    _typed(sky.cmb, CMBCosmology, "sky.cmb")
+    try:
+        CMBCosmology.from_mapping(OmegaConf.to_container(sky.cmb, resolve=True))
+    except (TypeError, ValueError) as err:
+        raise ConfigError(f"sky.cmb: {err}") from None
     fg = sky.foreground
     name = fg.get("name") if isinstance(fg, DictConfig) else None
     if name not in FOREGROUNDS:
