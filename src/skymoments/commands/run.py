@@ -86,11 +86,15 @@ def baselines(cfg: DictConfig, scenario, image: np.ndarray):
     a2 = scenario.prior_second_moment("a_fg")
     noise2d = scenario.mean_noise_power_2d()
     fg_ee, fg_bb = estimate_power_2d_from_image(image, patch)
-    wiener = WienerFilter(patch, s_ee, s_bb, a2 * fg_ee + noise2d, a2 * fg_bb + noise2d)
+    # Noise powers are referred to the sky (divided by B_ell^2), so the filters take the beam.
+    beam = scenario.beam_2d
+    wiener = WienerFilter(
+        patch, s_ee, s_bb, a2 * fg_ee + noise2d, a2 * fg_bb + noise2d, beam_2d=beam
+    )
     exact = None
     if scenario.is_gaussian_fixed():
         t_ee, t_bb = scenario.true_noise_power_2d()
-        exact = WienerFilter(patch, s_ee, s_bb, t_ee, t_bb)
+        exact = WienerFilter(patch, s_ee, s_bb, t_ee, t_bb, beam_2d=beam)
     return wiener, exact
 
 
