@@ -15,8 +15,9 @@ import torch
 from astropy.io import fits
 from omegaconf import OmegaConf
 
+from _predict_fakes import NPIX, PIXEL, make_qu
+from _predict_fakes import tiny_model as _tiny
 from skymoments.maps import FlatPatch
-from skymoments.nets import ChannelScaler, PosteriorMoments, UNet
 from skymoments.predict import pipeline
 from skymoments.tracking import set_model_alias, tracked_run
 
@@ -24,25 +25,12 @@ from skymoments.tracking import set_model_alias, tracked_run
 # every test here loads a pickled model: the whole module is slow.
 pytestmark = pytest.mark.slow
 
-NPIX, PIXEL = 16, 60.0
 NAME = "tiny-unet"
 CONF = Path(__file__).resolve().parents[1] / "conf"
 
 
-def make_qu(m=2, npix=NPIX, seed=0):
-    rng = np.random.default_rng(seed)
-    return rng.normal(size=(m, 2, npix, npix)) * np.array([5.0, 2.0])[None, :, None, None]
-
-
 def tiny_model(seed=0):
-    """PosteriorMoments with 1-level U-Nets (width 4, batch norm) and fitted scalers."""
-    torch.manual_seed(seed)
-    nets = [UNet(2, 2, depth=1, width=4, norm="batch") for _ in range(2)]
-    fit = make_qu(m=8, seed=seed + 100)
-    model = PosteriorMoments(
-        nets[0], nets[1], ChannelScaler(2).fit(fit), ChannelScaler(2, center=False).fit(fit)
-    )
-    return model.eval()
+    return _tiny(seed, norm="batch")
 
 
 @pytest.fixture(scope="module")

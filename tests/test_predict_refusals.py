@@ -17,28 +17,17 @@ from astropy.io import fits
 from mlflow import MlflowClient
 from omegaconf import OmegaConf
 
-from skymoments.nets import ChannelScaler, PosteriorMoments, UNet
+from _predict_fakes import NPIX, PIXEL, make_qu
+from _predict_fakes import tiny_model as _tiny
+from skymoments.nets import PosteriorMoments
 from skymoments.predict import pipeline
 from skymoments.tracking import tracked_run
 
-NPIX, PIXEL = 16, 60.0
 CONF = Path(__file__).resolve().parents[1] / "conf"
 
 
-def make_qu(m=2, npix=NPIX, seed=0):
-    rng = np.random.default_rng(seed)
-    return rng.normal(size=(m, 2, npix, npix)) * np.array([5.0, 2.0])[None, :, None, None]
-
-
 def tiny_model(seed=0):
-    """A PosteriorMoments with 1-level U-Nets of width 4 and scalers fitted on seeded maps."""
-    torch.manual_seed(seed)
-    nets = [UNet(2, 2, depth=1, width=4, norm="none") for _ in range(2)]
-    fit = make_qu(m=8, seed=seed + 100)
-    model = PosteriorMoments(
-        nets[0], nets[1], ChannelScaler(2).fit(fit), ChannelScaler(2, center=False).fit(fit)
-    )
-    return model.eval()
+    return _tiny(seed, norm="none")
 
 
 @pytest.fixture(scope="module")
