@@ -44,6 +44,19 @@ def _configure(module: pl.LightningModule, params, monitor: str):
     }
 
 
+def _log_epoch_loss(module: pl.LightningModule, name: str, loss, batch_size: int) -> None:
+    """Log a stage loss as a per-epoch mean (synced over DDP ranks), shown in the bar."""
+    module.log(
+        name,
+        loss,
+        on_step=False,
+        on_epoch=True,
+        sync_dist=True,
+        prog_bar=True,
+        batch_size=batch_size,
+    )
+
+
 class MeanModule(pl.LightningModule):
     """Stage one: ``f(d) ~ E[target | d]`` by least squares.
 
@@ -86,15 +99,7 @@ class MeanModule(pl.LightningModule):
         x = self.input_scaler(data)
         t = self.target_scaler(target)
         loss = F.mse_loss(self.net(x), t)
-        self.log(
-            f"{split}/loss_mean",
-            loss,
-            on_step=False,
-            on_epoch=True,
-            sync_dist=True,
-            prog_bar=True,
-            batch_size=data.shape[0],
-        )
+        _log_epoch_loss(self, f"{split}/loss_mean", loss, data.shape[0])
         return loss
 
     def training_step(self, batch, batch_idx):
@@ -170,15 +175,7 @@ class VarianceModule(pl.LightningModule):
         with torch.no_grad():
             resid2 = (t - self.mean_net(x)) ** 2
         loss = F.mse_loss(self(x), resid2)
-        self.log(
-            f"{split}/loss_var",
-            loss,
-            on_step=False,
-            on_epoch=True,
-            sync_dist=True,
-            prog_bar=True,
-            batch_size=data.shape[0],
-        )
+        _log_epoch_loss(self, f"{split}/loss_var", loss, data.shape[0])
         return loss
 
     def training_step(self, batch, batch_idx):
