@@ -263,7 +263,7 @@ def test_flat_cosmo_rule_agrees_with_the_healpix_cut_near_the_equator():
 
 
 def _write_healpix(path, maps, names, **cards):
-    from skymoments.maps.healpix import write_healpix_map
+    from skymoments.maps.fits_io import write_healpix_map
 
     write_healpix_map(path, maps, column_names=names)
     if cards:

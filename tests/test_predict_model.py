@@ -111,14 +111,8 @@ def _cls(lmax=200):
 
 
 def test_healpix_prediction_covers_the_region(logged, tmp_path):
-    from skymoments.maps.healpix import (
-        UNSEEN,
-        cut_patch,
-        patch_to_healpix,
-        read_healpix_map,
-        synfast_tqu,
-        write_healpix_map,
-    )
+    from skymoments.maps.fits_io import read_healpix_map, write_healpix_map
+    from skymoments.maps.healpix import UNSEEN, cut_patch, patch_to_healpix, synfast_tqu
 
     nside, nside_out = 64, 256
     tqu = synfast_tqu(_cls(), nside, seed=7)

@@ -190,7 +190,7 @@ def test_npy_prediction_matches_the_model_and_is_logged(store, tmp_path, fake_lo
 def _healpix_file(path, names=("T", "Q", "U"), **cards):
     import healpy as hp
 
-    from skymoments.maps.healpix import write_healpix_map
+    from skymoments.maps.fits_io import write_healpix_map
 
     maps = np.random.default_rng(3).normal(size=(len(names), hp.nside2npix(16)))
     write_healpix_map(path, maps, column_names=names)

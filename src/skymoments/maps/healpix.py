@@ -1,4 +1,6 @@
-"""The sphere: Gaussian HEALPix skies, gnomonic patch cuts and back-projection, FITS I/O.
+"""The sphere: Gaussian HEALPix skies, gnomonic patch cuts and back-projection.
+
+FITS files of HEALPix maps are read and written by :mod:`skymoments.maps.fits_io`.
 
 Conventions
 -----------
@@ -29,11 +31,7 @@ there. The gnomonic projection is not conformal: away from the centre ``e_x`` an
 
 from __future__ import annotations
 
-import os
-import re
-import tempfile
-from collections.abc import Mapping, Sequence
-from pathlib import Path
+from collections.abc import Mapping
 
 import healpy as hp
 import numpy as np
@@ -44,7 +42,6 @@ from skymoments.maps.geometry import FlatPatch
 
 UNSEEN = hp.UNSEEN
 CL_ORDER = ("TT", "EE", "BB", "TE")  # CAMB's column order, and healpy's with new=True
-POL_CONVENTIONS = ("COSMO", "IAU")
 # Largest angular distance from the centre of a cut to the patch corners. The gnomonic
 # projection only reaches a hemisphere, and its area distortion (1 + r^2)^(3/2) at
 # tangent-plane radius r is already 8 at 60 degrees: a bigger patch is no flat patch.
@@ -52,10 +49,6 @@ MAX_CORNER_DEG = 60.0
 # Order of the B-spline that interpolates between HEALPix rings (see _sample_belt).
 _SPLINE_ORDER = 7
 _RING_MARGIN = 12
-
-
-class MapFileExistsError(FileExistsError, ValueError):
-    """Raised when writing would replace an existing file without ``overwrite=True``."""
 
 
 # --- input checks ------------------------------------------------------------------------
@@ -565,221 +558,3 @@ def patch_to_healpix(
     out = np.full((k, hp.nside2npix(nside)), UNSEEN)
     out[:, pix] = vals
     return out[0] if single else out
-
-
-# --- FITS I/O ----------------------------------------------------------------------------
-
-_ALIASES = {"T": {"T", "I", "TEMPERATURE", "INTENSITY"}, "Q": {"Q"}, "U": {"U"}}
-_ALIASES["I"] = _ALIASES["T"]
-_TO_UK = {"k": 1e6, "mk": 1e3, "uk": 1.0, "muk": 1.0, "microk": 1.0}
-
-
-def _token(name: str) -> str:
-    return re.split(r"[_\-\s.]", name.strip().upper(), maxsplit=1)[0]
-
-
-def _matches(column: str, wanted: str) -> bool:
-    col, want = column.strip().upper(), wanted.strip().upper()
-    return col == want or _token(col) in _ALIASES.get(want, {want})
-
-
-def _is_u(column: str) -> bool:
-    return _token(column) == "U"
-
-
-def _polcconv(value, where: str) -> str:
-    if value is None:
-        return "COSMO"  # missing keyword means COSMO (HEALPix documentation)
-    conv = str(value).strip().upper()
-    if conv not in POL_CONVENTIONS:
-        raise ValueError(
-            f"POLCCONV = {value!r} in {where}: unknown polarization convention; "
-            f"accepted values are {', '.join(POL_CONVENTIONS)} (a missing keyword means COSMO)"
-        )
-    return conv
-
-
-def _check_convention(convention: str) -> str:
-    conv = str(convention).strip().upper()
-    if conv not in POL_CONVENTIONS:
-        raise ValueError(
-            f"convention must be one of {', '.join(POL_CONVENTIONS)}, got {convention!r}"
-        )
-    return conv
-
-
-def _unit_factor(unit: str | None, column: str, path) -> float:
-    if unit is None or not str(unit).strip():
-        return 1.0  # no TUNIT: taken as microkelvin already
-    key = str(unit).strip().replace("μ", "u").replace("µ", "u").lower()
-    key = re.sub(r"[_\s-]*(cmb|thermo)$", "", key)
-    if key not in _TO_UK:
-        raise ValueError(
-            f"column {column!r} of {path} has unit {unit!r}, which is not a CMB temperature "
-            "unit this reader converts (K, mK, uK, optionally _CMB); pass units=None to read "
-            "the raw values"
-        )
-    return _TO_UK[key]
-
-
-def read_healpix_map(
-    path,
-    fields: Sequence[str | int] = ("Q", "U"),
-    convention: str = "COSMO",
-    hdu: int = 1,
-    units: str | None = "uK",
-) -> np.ndarray:
-    """Read fields of a HEALPix FITS map.
-
-    Parameters
-    ----------
-    path : str or Path
-    fields : sequence of str or int
-        Column names (``"T"``/``"I"``, ``"Q"``, ``"U"`` match e.g. ``I_STOKES``,
-        ``Q_POLARISATION``; any other name must match exactly, case-insensitive) or
-        0-based column indices.
-    convention : {"COSMO", "IAU"}
-        Polarization convention of the returned maps. The file's own convention is its
-        ``POLCCONV`` keyword (extension header, then primary); a missing keyword means
-        COSMO (HEALPix documentation). A file in IAU has its U sign flipped to give COSMO.
-    hdu : int
-        FITS extension holding the map.
-    units : {"uK", None}
-        "uK": convert columns whose TUNIT is K, mK or uK (optionally ``_CMB``) to
-        microkelvin; a column without TUNIT is taken as microkelvin. None: raw values.
-
-    Returns
-    -------
-    ndarray, shape (len(fields), npix), float64
-        RING ordering (NESTED files are reordered by healpy); healpy.UNSEEN kept as is.
-    """
-    from astropy.io import fits
-
-    want_conv = _check_convention(convention)
-    if units not in ("uK", None):
-        raise ValueError(f"units must be 'uK' or None, got {units!r}")
-    path = Path(path)
-    if not path.is_file():
-        raise ValueError(f"no HEALPix FITS file at {path}")
-    if isinstance(fields, str | int):
-        fields = (fields,)
-    with fits.open(path) as hdul:
-        if not 0 < hdu < len(hdul):
-            raise ValueError(f"{path} has extensions 1..{len(hdul) - 1}, asked for hdu={hdu}")
-        header, primary = hdul[hdu].header, hdul[0].header
-        ncol = int(header.get("TFIELDS", 0))
-        columns = [str(header.get(f"TTYPE{i + 1}", f"COLUMN{i + 1}")) for i in range(ncol)]
-        tunits = [header.get(f"TUNIT{i + 1}") for i in range(ncol)]
-        raw_conv = header.get("POLCCONV", primary.get("POLCCONV"))
-    file_conv = _polcconv(raw_conv, str(path))
-
-    index = []
-    for f in fields:
-        if isinstance(f, int | np.integer):
-            if not 0 <= int(f) < ncol:
-                raise ValueError(f"column index {f} out of range: {path} has columns {columns}")
-            index.append(int(f))
-            continue
-        hits = [i for i, c in enumerate(columns) if _matches(c, str(f))]
-        if not hits:
-            raise ValueError(
-                f"{path} has no column {f!r}; available columns: {columns}. "
-                "Ask for one of them by name or by 0-based index"
-            )
-        index.append(hits[0])
-
-    maps = np.atleast_2d(
-        np.asarray(hp.read_map(str(path), field=tuple(index), hdu=hdu, dtype=np.float64))
-    ).astype(float, copy=True)
-    bad = hp.mask_bad(maps)
-    _check_finite(np.where(bad, 0.0, maps), f"{path}", allow_unseen=True)
-    for row, i in enumerate(index):
-        scale = _unit_factor(tunits[i], columns[i], path) if units == "uK" else 1.0
-        if file_conv != want_conv and _is_u(columns[i]):
-            scale = -scale  # IAU and COSMO differ by the sign of U
-        maps[row] = np.where(bad[row], UNSEEN, maps[row] * scale)
-    return maps
-
-
-def write_healpix_map(
-    path,
-    maps,
-    column_names: Sequence[str],
-    units: str = "uK",
-    convention: str = "COSMO",
-    overwrite: bool = False,
-    extra_header=None,
-) -> Path:
-    """Write HEALPix maps (RING ordering) to a FITS binary table, atomically.
-
-    Parameters
-    ----------
-    path : str or Path
-    maps : ndarray, shape (k, npix) or (npix,), microkelvin
-        COSMO Q/U; healpy.UNSEEN marks unobserved pixels, NaN and inf are refused.
-    column_names : sequence of str, length k
-        E.g. ``("T", "Q", "U")``; a column whose name starts with ``U`` is U.
-    units : str
-        TUNIT of every column.
-    convention : {"COSMO", "IAU"}
-        Convention written to the file (``POLCCONV``); IAU flips the sign of U columns.
-    overwrite : bool
-        Replace an existing file; otherwise :class:`MapFileExistsError`.
-    extra_header : dict or sequence of (key, value[, comment]), optional
-        More header cards (not POLCCONV, which ``convention`` sets).
-
-    Returns
-    -------
-    Path of the written file. The map goes to a temporary file in the same folder that
-    then replaces ``path`` (``os.replace``), so a reader never sees a half-written file.
-    """
-    arr, _, _ = _healpix_maps(maps, "maps", allow_unseen=True)
-    conv = _check_convention(convention)
-    if isinstance(column_names, str):
-        column_names = (column_names,)
-    names = [str(c) for c in column_names]
-    if len(names) != arr.shape[0] or len(set(n.upper() for n in names)) != len(names):
-        raise ValueError(
-            f"column_names {names} must give one distinct name per map ({arr.shape[0]} maps)"
-        )
-    if not isinstance(units, str):
-        raise ValueError(f"units must be a string such as 'uK', got {units!r}")
-    cards = []
-    if extra_header is not None:
-        items = extra_header.items() if isinstance(extra_header, Mapping) else extra_header
-        for card in items:
-            card = tuple(card)
-            if str(card[0]).strip().upper() == "POLCCONV":
-                raise ValueError("set POLCCONV through convention=, not extra_header")
-            cards.append(card)
-    cards.append(("POLCCONV", conv, "polarization convention (COSMO or IAU)"))
-
-    path = Path(path)
-    if path.exists() and not overwrite:
-        raise MapFileExistsError(f"{path} exists; pass overwrite=True to replace it")
-    if not path.parent.is_dir():
-        raise ValueError(f"folder {path.parent} does not exist; create it first")
-    out = arr.copy()
-    if conv == "IAU":
-        for row, name in enumerate(names):
-            if _is_u(name):
-                good = ~hp.mask_bad(out[row])
-                out[row, good] = -out[row, good]
-    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
-    os.close(fd)
-    try:
-        hp.write_map(
-            tmp,
-            list(out) if out.shape[0] > 1 else out[0],
-            column_names=names,
-            column_units=units,
-            extra_header=cards,
-            overwrite=True,
-            dtype=out.dtype,
-        )
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-    return path

@@ -308,7 +308,7 @@ def write_outputs(
         The written files.
     """
     from skymoments.calibration.report import write_posterior
-    from skymoments.maps.healpix import write_healpix_map
+    from skymoments.maps.fits_io import write_healpix_map
 
     folders = {p.parent for p in paths.values()}
     if len(folders) != 1:

@@ -1,17 +1,19 @@
-"""Read the one training image of a synthesis from disk.
+"""Read the one training image of a synthesis from disk, through the users' map reader.
 
-Accepted inputs (all Q/U in microkelvin, shape (2, n, n), rows = y):
+The file is read by :mod:`skymoments.maps.reader`, the reader ``skymoments predict`` uses,
+so a file gives the same microkelvin, patch-frame Q/U in both commands:
 
-* ``.npy`` holding the (2, n, n) array;
+* ``.npy`` holding the (2, n, n) array (patch frame, uK);
 * ``.npz`` with the array under ``key`` (optional when the file holds one array);
-* a FITS image: a (2, n, n) cube in one HDU, or two 2-D image HDUs (Q then U);
-* a HEALPix FITS map (a binary table with ``PIXTYPE = 'HEALPIX'``): Q and U are read with
-  :func:`skymoments.maps.healpix.read_healpix_map` (COSMO convention) and a gnomonic
-  patch centred at ``(lon_deg, lat_deg)`` with the geometry ``patch`` is cut with
+* a flat FITS image (a (2, n, n) cube, Q and U extensions, or two 2-D image HDUs), with
+  ``BUNIT``, the ``CDELT`` axis signs and ``POLCCONV`` honoured (absent: the patch frame);
+* a HEALPix FITS map (``PIXTYPE = 'HEALPIX'``): Q and U read as COSMO uK and a gnomonic
+  patch centred at ``(lon_deg, lat_deg)`` with the geometry ``patch`` cut with
   :func:`skymoments.maps.healpix.cut_patch`.
 
-Every route ends in :func:`skymoments.synthesis.synthesize.check_image`, so NaNs, a
-constant image or a wrong shape are reported the same way.
+Every route ends in :func:`skymoments.synthesis.synthesize.check_image` and, when the patch
+geometry is given, in a check that the image has the patch's size (and pixel side, when the
+file states one), so each refusal is one line naming the file and what to change.
 """
 
 from __future__ import annotations
@@ -21,6 +23,14 @@ from pathlib import Path
 import numpy as np
 
 from skymoments.maps.geometry import FlatPatch
+from skymoments.maps.reader import (
+    PIXEL_RTOL,
+    check_values,
+    detect_kind,
+    read_array_file,
+    read_healpix_file,
+    read_image_file,
+)
 from skymoments.synthesis.synthesize import check_image
 
 
@@ -35,13 +45,6 @@ def _squeeze_one(arr: np.ndarray, where: str) -> np.ndarray:
     return arr
 
 
-def _is_healpix(hdul) -> bool:
-    for h in hdul[1:]:
-        if str(h.header.get("PIXTYPE", "")).strip().upper() == "HEALPIX":
-            return True
-    return False
-
-
 def load_training_image(
     path,
     key: str | None = None,
@@ -49,7 +52,7 @@ def load_training_image(
     lat_deg: float | None = None,
     patch: FlatPatch | None = None,
 ) -> np.ndarray:
-    """Read a training image (see the module docstring for the formats).
+    """Read and check a training image (see the module docstring for the formats).
 
     Parameters
     ----------
@@ -59,73 +62,75 @@ def load_training_image(
     lon_deg, lat_deg : float, optional
         Patch centre for a HEALPix map, degrees.
     patch : FlatPatch, optional
-        Patch geometry for a HEALPix map.
+        Patch geometry: the cut of a HEALPix map, and the size (and pixel side) a flat
+        image must have.
 
     Returns
     -------
-    ndarray, shape (2, n, n), float64, microkelvin
+    ndarray, shape (2, n, n) (or (1, n, n) for a scalar map), float64, microkelvin
 
     Raises
     ------
     ValueError
-        Missing file, unknown suffix, missing key or centre, bad shape or content.
+        One line naming the file: missing, empty, truncated or not the format its suffix
+        says; unknown suffix; missing key or centre; bad shape, NaN/inf, constant, beyond any
+        sky; a size or pixel side different from ``patch``.
     """
     p = Path(path).expanduser()
-    if not p.exists():
+    if not p.is_file():
         raise ValueError(f"training image {p} does not exist; check synthesis.image")
-    suffix = "".join(p.suffixes[-2:]).lower() if p.suffix.lower() == ".gz" else p.suffix.lower()
-    if suffix == ".npy":
-        arr = _squeeze_one(np.load(p, allow_pickle=False), str(p))
-    elif suffix == ".npz":
-        with np.load(p, allow_pickle=False) as f:
-            names = list(f.keys())
-            if key is None:
-                if len(names) != 1:
-                    raise ValueError(
-                        f"{p} holds arrays {names}; name the training image with "
-                        "synthesis.image_key=NAME"
-                    )
-                key = names[0]
-            if key not in names:
-                raise ValueError(f"{p} has no array {key!r}; it holds {names}")
-            arr = _squeeze_one(f[key], f"{p}[{key}]")
-    elif suffix in (".fits", ".fit", ".fits.gz", ".fts"):
-        arr = _read_fits(p, lon_deg, lat_deg, patch)
-    else:
-        raise ValueError(
-            f"unknown training image format {p.suffix!r} for {p}; use .npy, .npz or FITS"
+    try:
+        kind = detect_kind(p, "training image")
+    except ValueError as exc:
+        if "suffix" in str(exc):
+            raise ValueError(
+                f"unknown training image format {p.suffix!r} for {p}; use .npy, .npz or FITS "
+                "(synthesis.image)"
+            ) from exc
+        raise
+    file_pixel, pixel_source = None, ""
+    if kind == "array":
+        arr, where, file_pixel, pixel_source = read_array_file(
+            p, key=key, key_option="synthesis.image_key"
         )
-    return check_image(arr)
-
-
-def _read_fits(p: Path, lon_deg, lat_deg, patch) -> np.ndarray:
-    from astropy.io import fits
-
-    with fits.open(p, memmap=False) as hdul:
-        if _is_healpix(hdul):
-            healpix = True
-        else:
-            healpix = False
-            images = [h.data for h in hdul if h.data is not None and getattr(h, "is_image", False)]
-            images = [np.asarray(d, dtype=np.float64) for d in images]
-    if healpix:
+        arr = _squeeze_one(arr, where)
+    elif kind == "image":
+        flat = read_image_file(p)
+        arr, where = _squeeze_one(flat.data, flat.where), flat.where
+        file_pixel, pixel_source = flat.pixel_arcmin, flat.pixel_source
+    else:
+        where = str(p)
         if lon_deg is None or lat_deg is None or patch is None:
             raise ValueError(
                 f"{p} is a HEALPix map: give the patch centre synthesis.lon_deg and "
                 "synthesis.lat_deg (degrees); the patch size comes from patch.npix and "
                 "patch.pixel_arcmin"
             )
-        from skymoments.maps.healpix import cut_patch, read_healpix_map
+        from skymoments.maps.healpix import cut_patch
 
-        maps = read_healpix_map(p, fields=("Q", "U"), convention="COSMO")
-        return np.asarray(cut_patch(maps, float(lon_deg), float(lat_deg), patch), dtype=float)
-    cubes = [d for d in images if d.ndim == 3]
-    planes = [d for d in images if d.ndim == 2]
-    if cubes:
-        return _squeeze_one(cubes[0], str(p))
-    if len(planes) >= 2:
-        return np.stack(planes[:2])
-    raise ValueError(
-        f"{p} holds no (2, n, n) cube and fewer than two 2-D image HDUs; write Q and U as "
-        "a cube or as two image extensions"
-    )
+        sky = read_healpix_file(p)
+        check_values(sky.maps, where)
+        arr = np.asarray(cut_patch(sky.maps, float(lon_deg), float(lat_deg), patch), dtype=float)
+    try:
+        img = check_image(arr)
+        check_values(img, where)
+    except ValueError as exc:
+        raise ValueError(f"{where}: {exc}") from exc
+    if patch is not None:
+        _check_geometry(img, where, patch, file_pixel, pixel_source)
+    return img
+
+
+def _check_geometry(img, where: str, patch: FlatPatch, pixel, source: str) -> None:
+    n = img.shape[-1]
+    if n != patch.npix:
+        raise ValueError(
+            f"{where} is {n}x{n} pixels but the patch is {patch.npix}x{patch.npix} "
+            f"(patch.npix={patch.npix}); choose a patch group of {n} pixels (patch.npix={n}) "
+            f"or cut the image to {patch.npix}x{patch.npix}"
+        )
+    if pixel is not None and not np.isclose(pixel, patch.pixel_arcmin, rtol=PIXEL_RTOL, atol=0):
+        raise ValueError(
+            f"{where} has {pixel:g} arcmin pixels ({source}) but patch.pixel_arcmin="
+            f"{patch.pixel_arcmin:g}; set patch.pixel_arcmin={pixel:g} or resample the image"
+        )
