@@ -12,6 +12,7 @@ SUBCOMMANDS = {
     "evaluate": "re-evaluate a tracked model on another validation scenario",
     "compare": "compare tracked runs side by side (terminal table and HTML report)",
     "predict": "apply a tracked model to new maps",
+    "settle": "find runs whose process died (heartbeat stopped) and mark them KILLED",
 }
 
 USAGE = """usage: skymoments <subcommand> [key=value ...] [-m] [--help]

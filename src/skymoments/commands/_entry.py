@@ -13,6 +13,7 @@ import hydra
 from omegaconf import DictConfig
 
 from skymoments.config import conf_dir
+from skymoments.tracking.liveness import RunStopped
 
 # Third-party chatter that buries our own output: Lightning's start-up banners and tips,
 # MLflow's note on pickled models (we pickle on purpose: DEVELOPERS.md, Tracking).
@@ -20,6 +21,8 @@ QUIET_LOGGERS = {
     "lightning.pytorch.utilities.rank_zero": logging.WARNING,
     "lightning.fabric.utilities.rank_zero": logging.WARNING,
     "lightning.pytorch.accelerators.cuda": logging.WARNING,
+    # "Received SIGTERM": our own one line says what happened to the run.
+    "lightning.pytorch.trainer.connectors.signal_connector": logging.WARNING,
     "mlflow.pytorch": logging.ERROR,
     "alembic": logging.WARNING,
 }
@@ -69,6 +72,14 @@ def hydra_task(fn: Callable[[DictConfig], object]) -> Callable[[], object]:
                 raise
             print(f"skymoments: {err}", file=sys.stderr)
             sys.exit(2)
+        except RunStopped as stop:
+            # SIGTERM or Ctrl-C: the run is already marked KILLED; say so in one line and
+            # exit 128 + the signal number, as a shell reports a process a signal ended.
+            print(f"skymoments: {stop}", file=sys.stderr)
+            sys.exit(stop.exit_code)
+        except KeyboardInterrupt:
+            print("skymoments: interrupted", file=sys.stderr)
+            sys.exit(130)
 
     @functools.wraps(fn)
     def main() -> object:

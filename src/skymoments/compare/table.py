@@ -3,7 +3,8 @@
 Two tables, so that both fit an 80-column terminal:
 
 * the ranking: one row per run, best first, unranked runs last (dimmed, status in red), with
-  the rank, the run's name and short id, its status, the objective and the params that vary
+  the rank, the run's name and short id, its status (``LOST`` for a RUNNING run whose
+  heartbeat stopped), the objective and the params that vary
   (a representative of each confounded group, at most ``max_param_columns`` of them);
 * the key metrics: two rows per run with metrics (component E, then B), same order, one
   column per metric.
@@ -19,8 +20,15 @@ from rich.text import Text
 
 from skymoments.calibration.metrics import COMPONENTS
 from skymoments.compare.core import KEY_METRICS, Comparison, format_value
+from skymoments.tracking.liveness import lost_for_s
 
-__all__ = ["comparison_table", "metrics_table", "print_comparison", "render_text"]
+__all__ = [
+    "comparison_table",
+    "metrics_table",
+    "print_comparison",
+    "render_text",
+    "shown_status",
+]
 
 
 def _short(run_id: str) -> str:
@@ -29,6 +37,11 @@ def _short(run_id: str) -> str:
 
 def _rank(entry) -> str:
     return str(entry.rank) if entry.ranked else "-"
+
+
+def shown_status(run) -> str:
+    """The run's status, or ``LOST`` for a RUNNING run whose heartbeat stopped."""
+    return "LOST" if lost_for_s(run.status, run.tags) is not None else run.status
 
 
 def comparison_table(comp: Comparison, max_param_columns: int = 6) -> Table:
@@ -48,7 +61,7 @@ def comparison_table(comp: Comparison, max_param_columns: int = 6) -> Table:
         table.add_column(p.key + (f" (+{len(p.aliases)})" if p.aliases else ""), overflow="fold")
     for i, entry in enumerate(comp.entries):
         run = entry.run
-        status = Text(run.status, style="green" if run.status == "FINISHED" else "red")
+        status = Text(shown_status(run), style="green" if run.status == "FINISHED" else "red")
         cells: list = [
             _rank(entry),
             run.name or "(unnamed)",
@@ -112,6 +125,12 @@ def print_comparison(
         console.print("no param varies across these runs")
     for entry in comp.unranked:
         console.print(f"not ranked: {entry.run.name or entry.run.run_id} ({entry.reason})")
+    lost = [e.run for e in comp.entries if shown_status(e.run) == "LOST"]
+    for run in lost:
+        console.print(
+            f"lost: run {run.run_id} is RUNNING but its heartbeat stopped (its process is "
+            "gone); `skymoments settle settle.mark=true` marks it KILLED"
+        )
     for note in comp.notes:
         console.print(f"note: {note}")
 

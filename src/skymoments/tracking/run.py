@@ -31,6 +31,16 @@ from skymoments.tracking.flatten import (
     flatten_config,
     param_value,
 )
+from skymoments.tracking.liveness import (
+    HEARTBEAT_PERIOD_TAG,
+    HEARTBEAT_TAG,
+    STOPPED_BY_TAG,
+    Heartbeat,
+    RunStopped,
+    heartbeat_period_s,
+    now_ms,
+    stop_signals,
+)
 from skymoments.tracking.settings import TrackingSettings, launch_dir, settings_from
 from skymoments.tracking.store import (
     TrackingUnavailableError,
@@ -421,10 +431,21 @@ class TrackedRun:
         return RunLogger(self.settings, None if self.passive else self.run_id, prefix=prefix)
 
     # ------------------------------------------------------------------ lifecycle
-    def _finish(self, status: str) -> None:
-        """Set the final status, best-effort: a store that went away gives a warning only."""
+    def _beat(self, stamp_ms: int) -> None:
+        """Record one heartbeat (called from the heartbeat thread)."""
+        client = self._client()
+        self._retry(
+            "record a heartbeat",
+            lambda: client.set_tag(self.run_id, HEARTBEAT_TAG, str(int(stamp_ms))),
+        )
+
+    def _finish(self, status: str) -> bool:
+        """Set the final status, best-effort: a store that went away gives a warning only.
+
+        Returns True when the status was written.
+        """
         if self.passive:
-            return
+            return True
         try:
             if self.settings.is_http:
                 probe_server(self.tracking_uri)
@@ -439,6 +460,8 @@ class TrackedRun:
             )
             warnings.warn(message, RuntimeWarning, stacklevel=3)
             log.warning(message)
+            return False
+        return True
 
 
 def _context_tags() -> dict[str, str]:
@@ -518,8 +541,15 @@ def tracked_run(
       (tag ``mlflow.parentRunId``) and is tagged with the sweep id (``skymoments.sweep_id``),
       the job's overrides (``skymoments.overrides``) and number (``skymoments.job_num``).
     * The final status is set in a ``finally``: FINISHED when the block ends normally, KILLED
-      on KeyboardInterrupt, FAILED on any other exception (tagged ``skymoments.error``), which
-      then propagates. If the store is gone by then, a warning replaces the update.
+      when SIGTERM or SIGINT stopped it (:class:`~skymoments.tracking.liveness.RunStopped`,
+      tagged ``skymoments.stopped_by``) or on KeyboardInterrupt, FAILED on any other
+      exception (tagged ``skymoments.error``), which then propagates. If the store is gone by
+      then, a warning replaces the update.
+    * In the main thread SIGTERM and SIGINT raise ``RunStopped`` while the block runs (the
+      handlers that were there before are put back afterwards), and a heartbeat thread sets
+      the tag ``skymoments.heartbeat`` every ``SKYMOMENTS_HEARTBEAT_S`` seconds (default 30),
+      so that a run whose process was SIGKILLed can be told from a live one
+      (:mod:`skymoments.tracking.liveness`).
     * On a distributed rank other than zero no run is created; the handle is passive and
       carries the rank-zero run's id when rank zero exported it (``SKYMOMENTS_RUN_ID``).
 
@@ -566,6 +596,9 @@ def tracked_run(
     for key, value in (tags or {}).items():
         run_tags[clean_key(key)] = cap_value(param_value(value), MAX_TAG_LENGTH)
 
+    period_s = heartbeat_period_s()
+    run_tags[HEARTBEAT_TAG] = str(now_ms())
+    run_tags[HEARTBEAT_PERIOD_TAG] = f"{period_s:g}"
     created = with_retries(
         settings,
         "create the run",
@@ -575,24 +608,52 @@ def tracked_run(
     previous_env = os.environ.get(ENV_RUN_ID)
     os.environ[ENV_RUN_ID] = run.run_id
     status = "FAILED"
+    stopped: RunStopped | None = None
+    with stop_signals() as guard:
+        heartbeat = Heartbeat(run._beat, period_s).start()
+        try:
+            yield run
+            status = "FINISHED"
+        except RunStopped as exc:
+            status, stopped = "KILLED", exc
+            _note_stop(run, exc.signal_name)
+            raise
+        except KeyboardInterrupt:
+            status = "KILLED"
+            _note_stop(run, "SIGINT")
+            raise
+        except SystemExit as exc:
+            if type(exc).__name__ == "SIGTERMException":
+                # Lightning's own SIGTERM exit (a SystemExit with code None), seen where our
+                # handler could not be installed (outside the main thread).
+                status = "KILLED"
+                _note_stop(run, "SIGTERM")
+            else:
+                status = "FINISHED" if exc.code in (None, 0) else "FAILED"
+            raise
+        except BaseException as exc:
+            _note_failure(run, exc)
+            raise
+        finally:
+            if guard is not None:
+                guard.closing = True
+            heartbeat.stop()
+            if previous_env is None:
+                os.environ.pop(ENV_RUN_ID, None)
+            else:
+                os.environ[ENV_RUN_ID] = previous_env
+            marked = run._finish(status)
+            if stopped is not None:
+                stopped.run_id, stopped.tracking_uri = run.run_id, run.tracking_uri
+                stopped.marked = marked
+
+
+def _note_stop(run: TrackedRun, signal_name: str) -> None:
+    """Tag the run with the signal that stopped it (best-effort)."""
     try:
-        yield run
-        status = "FINISHED"
-    except KeyboardInterrupt:
-        status = "KILLED"
-        raise
-    except SystemExit as exc:
-        status = "FINISHED" if exc.code in (None, 0) else "FAILED"
-        raise
-    except BaseException as exc:
-        _note_failure(run, exc)
-        raise
-    finally:
-        if previous_env is None:
-            os.environ.pop(ENV_RUN_ID, None)
-        else:
-            os.environ[ENV_RUN_ID] = previous_env
-        run._finish(status)
+        run.set_tags({STOPPED_BY_TAG: signal_name})
+    except Exception as exc:  # the status update matters more than the tag
+        log.warning("could not tag run %s as stopped: %s", run.run_id, exc)
 
 
 def _note_failure(run: TrackedRun, exc: BaseException) -> None:
