@@ -8,6 +8,7 @@ is replaced by one returning a tiny in-process model, or by one that fails if ca
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 
 import numpy as np
@@ -353,3 +354,95 @@ def test_command_prints_the_refusal_and_exits_2(store, tmp_path, no_compute, cap
     err = capsys.readouterr().err
     assert err.startswith("skymoments predict: ") and "trained on 16x16" in err
     assert "Traceback" not in err
+
+
+# --- damaged or impossible input files: one line, exit 2, the store untouched ------------
+
+
+def _damaged_case(kind, tmp_path):
+    """(input path, expected message) of a file the command must refuse before compute."""
+    if kind in ("empty_npy", "empty_fits"):
+        path = tmp_path / ("empty.npy" if kind == "empty_npy" else "empty.fits")
+        path.write_bytes(b"")
+        return path, r"is empty \(0 bytes\)"
+    if kind == "truncated_npy":
+        np.save(tmp_path / "full.npy", make_qu())
+        data = (tmp_path / "full.npy").read_bytes()
+        (tmp_path / "cut.npy").write_bytes(data[: len(data) // 2])
+        return tmp_path / "cut.npy", r"is truncated or corrupt"
+    if kind == "truncated_fits":
+        fits.PrimaryHDU(make_qu(m=1)[0]).writeto(tmp_path / "full.fits")
+        data = (tmp_path / "full.fits").read_bytes()
+        (tmp_path / "cut.fits").write_bytes(data[: 2880 + 1000])
+        return tmp_path / "cut.fits", r"is truncated: HDU 0 needs"
+    if kind == "truncated_healpix":
+        full = _healpix_file(tmp_path / "full_sky.fits")
+        data = full.read_bytes()
+        (tmp_path / "cut_sky.fits").write_bytes(data[: len(data) // 2])
+        return tmp_path / "cut_sky.fits", r"is truncated: HDU 1 needs"
+    if kind in ("huge_1e30", "huge_1e300"):
+        qu = make_qu()
+        qu[1, 0, 5, 5] = 1e30 if kind == "huge_1e30" else 1e300
+        np.save(tmp_path / f"{kind}.npy", qu)
+        return tmp_path / f"{kind}.npy", r"1 values beyond 1e\+06 uK .*check the map's unit"
+    if kind == "huge_healpix":
+        path = _healpix_file(tmp_path / "kelvin_as_uk.fits")
+        with fits.open(path, mode="update") as hdul:
+            for i in (2, 3):
+                hdul[1].header[f"TUNIT{i}"] = "K"  # uK values labelled kelvin: 1e6 too large
+        return path, r"values beyond 1e\+06 uK"
+    raise AssertionError(kind)
+
+
+DAMAGED = [
+    "empty_npy",
+    "empty_fits",
+    "truncated_npy",
+    "truncated_fits",
+    "truncated_healpix",
+    "huge_1e30",
+    "huge_1e300",
+    "huge_healpix",
+]
+
+
+@pytest.mark.parametrize("kind", DAMAGED)
+def test_damaged_or_impossible_inputs_exit_2_in_one_line(store, tmp_path, no_compute, kind, capsys):
+    import contextlib
+    import sqlite3
+
+    from hydra import compose, initialize_config_dir
+
+    from skymoments.commands.predict import main
+
+    path, message = _damaged_case(kind, tmp_path)
+    client = MlflowClient(store["uri"])
+    exps = [e.experiment_id for e in client.search_experiments()]
+    before = {r.info.run_id: r.info.status for r in client.search_runs(exps)}
+    overrides = [
+        f"predict.model={store['run_id']}",
+        f"predict.input={path}",
+        f"predict.out={tmp_path / 'out'}",
+        f"tracking.root={store['tracking']['root']}",
+        "tracking.experiment=training",
+    ]
+    if kind.endswith("healpix"):
+        overrides.append("predict.centres=[[0,0]]")
+    else:
+        overrides.append(f"predict.pixel_arcmin={PIXEL}")
+    with initialize_config_dir(config_dir=str(CONF), version_base="1.3"):
+        cfg = compose("config", overrides=overrides)
+    with pytest.raises(SystemExit) as exit_info:
+        main.task(cfg)
+    assert exit_info.value.code == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "Traceback" not in err, err
+    assert str(path) in err
+    assert re.search(message, err), err
+    assert "Python objects" not in err
+    # No run was opened and every earlier one keeps its status; SQLite's own check passes.
+    assert {r.info.run_id: r.info.status for r in client.search_runs(exps)} == before
+    db = Path(store["tracking"]["root"]) / "mlflow.db"
+    with contextlib.closing(sqlite3.connect(f"file:{db}?mode=ro", uri=True)) as con:
+        assert con.execute("PRAGMA integrity_check").fetchall() == [("ok",)]
+    assert not (tmp_path / "out").exists()

@@ -15,6 +15,7 @@ IAU (from north towards east), which differ by the sign of U (HEALPix documentat
 from __future__ import annotations
 
 import re
+import warnings
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 
@@ -111,18 +112,26 @@ def check_fits_file(path, what: str = "FITS file"):
     size = path.stat().st_size
     if size == 0:
         raise ValueError(f"{what} {path} is empty (0 bytes); write or copy it again")
-    try:
-        hdul = fits.open(path, memmap=False, lazy_load_hdus=False)
-    except (OSError, TypeError, ValueError, IndexError, KeyError) as exc:
-        if size < 2880 or "Empty or corrupt" in str(exc) or isinstance(exc, TypeError):
-            raise ValueError(
-                f"{what} {path} is truncated or corrupt ({size} bytes; a FITS file is at least "
-                "one 2880-byte header block); write or copy it again"
-            ) from exc
+    with open(path, "rb") as fh:
+        start = fh.read(80)
+    # A FITS file begins with the card SIMPLE = T (FITS standard 4.0, section 4.4.1.1);
+    # gzip-compressed FITS begins with gzip's magic bytes 1f 8b (RFC 1952).
+    if not (start.startswith(b"SIMPLE  =") or start.startswith(b"\x1f\x8b")):
+        kind = "text" if all(32 <= c < 127 or c in (9, 10, 13) for c in start) else "binary"
         raise ValueError(
-            f"{what} {path} is not a FITS file ({exc}); give a FITS file, or a .npy/.npz array"
+            f"{what} {path} is not a FITS file (it holds {kind} that does not begin with the "
+            "SIMPLE card every FITS file starts with); give a FITS file, or a .npy/.npz array"
+        )
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # astropy warns of truncation; we say it below
+            hdul = fits.open(path, memmap=False, lazy_load_hdus=False)
+    except (OSError, TypeError, ValueError, IndexError, KeyError) as exc:
+        raise ValueError(
+            f"{what} {path} is truncated or corrupt ({size} bytes: {exc}); write or copy it again"
         ) from exc
-    for i, hdu in enumerate(hdul):
+    gzipped = start.startswith(b"\x1f\x8b")  # its size is not that of the FITS stream
+    for i, hdu in enumerate([] if gzipped else hdul):
         info = hdu.fileinfo()
         if info is not None and info["datLoc"] + hdu.size > size:
             hdul.close()
