@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import torch
 
-from skymoments.nets import ChannelScaler, PosteriorMoments, UNet
+from skymoments.nets import ChannelScaler, PosteriorMoments, build_network
 
 NPIX, PIXEL = 16, 60.0
 
@@ -19,7 +19,9 @@ def make_qu(m=2, npix=NPIX, seed=0):
 def tiny_model(seed=0, norm="batch"):
     """PosteriorMoments with 1-level U-Nets of width 4 and scalers fitted on seeded maps."""
     torch.manual_seed(seed)
-    nets = [UNet(2, 2, depth=1, width=4, norm=norm) for _ in range(2)]
+    # Built from config nodes, as the pipeline does: a stored model is rebuilt from them.
+    node = {"_target_": "skymoments.nets.UNet", "depth": 1, "width": 4, "norm": norm}
+    nets = [build_network(node) for _ in range(2)]
     fit = make_qu(m=8, seed=seed + 100)
     model = PosteriorMoments(
         nets[0], nets[1], ChannelScaler(2).fit(fit), ChannelScaler(2, center=False).fit(fit)

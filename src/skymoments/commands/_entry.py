@@ -16,7 +16,7 @@ from skymoments.config import conf_dir
 from skymoments.tracking.liveness import RunStopped
 
 # Third-party chatter that buries our own output: Lightning's start-up banners and tips,
-# MLflow's note on pickled models (we pickle on purpose: DEVELOPERS.md, Tracking).
+# MLflow's note on pickled models (shown only when an old pickled model is loaded on purpose).
 QUIET_LOGGERS = {
     "lightning.pytorch.utilities.rank_zero": logging.WARNING,
     "lightning.fabric.utilities.rank_zero": logging.WARNING,

@@ -53,4 +53,7 @@ def build_network(cfg_node, key: str = "model.net") -> nn.Module:
         raise ValueError(f"{key}: cannot build {cfg_node._target_!r}: {err}") from err
     if not isinstance(net, nn.Module):
         raise ValueError(f"{key}._target_={cfg_node._target_!r} did not build a torch nn.Module")
+    # The node is the network's architecture: a stored model is rebuilt from it
+    # (skymoments.nets.archive), never unpickled.
+    net.built_from = OmegaConf.to_container(cfg_node, resolve=True)
     return net

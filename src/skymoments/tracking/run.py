@@ -3,7 +3,7 @@
 Every call goes through an ``MlflowClient`` bound to the run's own tracking URI, never through
 MLflow's process-wide "active run" or global URI, so that several runs in one process (a sweep
 under the basic launcher, a test session) cannot leak into each other. The two MLflow calls
-that only read the global URI (logging and loading a PyTorch model) are wrapped in
+that only read the global URI (logging, registering and downloading a model) are wrapped in
 :func:`skymoments.tracking.store.mlflow_uris`, which puts the global state back afterwards.
 """
 
@@ -342,26 +342,19 @@ class TrackedRun:
         module: Any,
         name: str = "model",
         registered_name: str | None = None,
-        input_example: Any = None,
-        **kwargs: Any,
     ) -> Any:
-        """Log a torch module with MLflow's PyTorch flavour, optionally registering it.
+        """Log a model as its architecture plus its weights, optionally registering it.
 
         Parameters
         ----------
-        module : torch.nn.Module
-            Everything needed at prediction time should be inside it (networks, scalings as
-            buffers or attributes): it is pickled whole.
+        module : skymoments.nets.PosteriorMoments
+            Its networks built by :func:`skymoments.nets.build_network`; everything needed
+            at prediction time is in its ``state_dict`` (scalers and statistics as buffers).
         name : str
             The model's name in the run; ``runs:/<run_id>/<name>`` loads it back.
         registered_name : str, optional
             Register the model as a new version of this registered model
             (``models:/<registered_name>/<version>``); pass ``run.register_as``.
-        input_example : array or tensor, optional
-            A batch used to record the model's signature.
-        **kwargs
-            Passed to ``mlflow.pytorch.log_model`` (``code_paths``, ``pip_requirements``,
-            ``serialization_format``, ...).
 
         Returns
         -------
@@ -370,44 +363,24 @@ class TrackedRun:
 
         Notes
         -----
-        The default serialization is ``"pickle"`` (the module object itself, so it reloads
-        as the same class, with its attributes), not MLflow 3's default ``"pt2"`` graph
-        export, which fixes the batch size of the example and keeps only ``forward``. The
-        pickle needs the module's class importable when loading (``skymoments`` installed);
-        MLflow logs a caution about unpickling, which is expected. The pip requirements are
-        the PyTorch flavour's (torch, cloudpickle) without a local version label, which also
-        spares MLflow's slow requirement inference.
+        Nothing is pickled: the folder holds ``architecture.json`` and ``weights.pt`` (tensors
+        only), and loading builds the model from skymoments' own classes
+        (:mod:`skymoments.tracking.models`). ``mlflow.pyfunc.load_model`` serves it too.
         """
         if self.passive:
             return None
-        import mlflow.pytorch
+        import mlflow
 
-        if input_example is not None and hasattr(input_example, "detach"):
-            input_example = input_example.detach().cpu().numpy()
-        kwargs.setdefault("serialization_format", "pickle")
-        kwargs.setdefault("pip_requirements", _torch_requirements())
-        client = self._client()
-        # The logged model is created in the run's experiment explicitly: left to itself,
-        # MLflow would put it in the process's "active" experiment (often Default).
-        logged = self._retry(
-            "create the logged model",
-            lambda: client.create_logged_model(
-                experiment_id=self.experiment_id, name=name, source_run_id=self.run_id
-            ),
+        from skymoments.tracking.models import log_weights_model
+
+        info = log_weights_model(
+            self.settings,
+            self.run_id,
+            self.experiment_id,
+            module,
+            name=name,
+            requirements=_torch_requirements(),
         )
-
-        def save() -> Any:
-            with mlflow_uris(self.tracking_uri):
-                return mlflow.pytorch.log_model(
-                    module,
-                    name=name,
-                    model_id=logged.model_id,
-                    run_id=self.run_id,
-                    input_example=input_example,
-                    **kwargs,
-                )
-
-        info = self._retry("log the model", save)
         if registered_name:
 
             def register() -> Any:
@@ -687,8 +660,7 @@ def attach_run(tracking: Any, run_id: str) -> TrackedRun:
 
 
 def _torch_requirements() -> list[str]:
-    import cloudpickle
     import torch
 
     # A local version label (+cpu, +cu121) is not installable from PyPI: drop it.
-    return [f"torch=={torch.__version__.split('+')[0]}", f"cloudpickle=={cloudpickle.__version__}"]
+    return [f"torch=={torch.__version__.split('+')[0]}", "skymoments"]

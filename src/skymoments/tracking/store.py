@@ -288,10 +288,11 @@ def ensure_experiment(client: MlflowClient, settings: TrackingSettings, name: st
 def mlflow_uris(uri: str) -> Iterator[None]:
     """Point MLflow's process-wide tracking and registry URIs at ``uri`` for a block.
 
-    Needed for the few MLflow calls that only read the global URIs (``mlflow.pytorch.log_model``
-    and ``load_model``). The previous state, including the ``MLFLOW_TRACKING_URI`` and
-    ``MLFLOW_REGISTRY_URI`` environment variables that ``set_tracking_uri`` writes, is put back
-    exactly afterwards, so nothing leaks into later runs of the same process.
+    Needed for the few MLflow calls that only read the global URIs (``Model.log``,
+    ``register_model``, downloading a model). The previous state, including the
+    ``MLFLOW_TRACKING_URI`` and ``MLFLOW_REGISTRY_URI`` environment variables that
+    ``set_tracking_uri`` writes, is put back exactly afterwards, so nothing leaks into later
+    runs of the same process.
     """
     from mlflow.tracking._model_registry import utils as registry_utils
     from mlflow.tracking._tracking_service import utils as tracking_utils
