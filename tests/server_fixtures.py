@@ -16,6 +16,11 @@ Imported by ``tests/test_server_*.py`` (not a conftest, so other tests never pay
     destination (``--artifacts-destination``: clients upload and download artifacts through
     the server). The :class:`MlflowServer` handle can kill and restart it on the same port and
     database. The database is dropped at the end.
+``mlflow_auth_server`` (session)
+    The same with MLflow's basic-auth app (``--app-name basic-auth``): an admin account made
+    at first start from ``MLFLOW_AUTH_ADMIN_USERNAME``/``PASSWORD`` (random per session), a
+    user store of its own, and every request without valid credentials refused.
+    :meth:`MlflowServer.create_user` adds a team member.
 
 If PostgreSQL cannot be installed or started, the tests *fail* with the reason, since CI
 installs it. They are skipped only when ``SKYMOMENTS_SKIP_SERVER_TESTS=1`` is set explicitly.
@@ -25,9 +30,12 @@ Every wait is bounded; every process started here is stopped by its process-grou
 
 from __future__ import annotations
 
+import base64
 import contextlib
 import fcntl
+import json
 import os
+import secrets
 import signal
 import socket
 import subprocess
@@ -46,7 +54,9 @@ import pytest
 __all__ = [
     "MlflowServer",
     "Postgres",
+    "ServerAuth",
     "free_port",
+    "mlflow_auth_server",
     "mlflow_server",
     "postgres",
     "skymoments_env",
@@ -104,7 +114,14 @@ def skymoments_env(**extra: str) -> dict[str, str]:
     env = {
         k: v
         for k, v in os.environ.items()
-        if k not in ("MLFLOW_TRACKING_URI", "MLFLOW_REGISTRY_URI", "MLFLOW_EXPERIMENT_NAME")
+        if k
+        not in (
+            "MLFLOW_TRACKING_URI",
+            "MLFLOW_REGISTRY_URI",
+            "MLFLOW_EXPERIMENT_NAME",
+            "MLFLOW_TRACKING_USERNAME",
+            "MLFLOW_TRACKING_PASSWORD",
+        )
     }
     env.setdefault("MPLBACKEND", "Agg")
     env.update(extra)
@@ -269,6 +286,41 @@ def postgres(request: pytest.FixtureRequest) -> Iterator[Postgres]:
 
 
 # ---------------------------------------------------------------------------- mlflow server
+@dataclass(frozen=True)
+class ServerAuth:
+    """MLflow's basic-auth app for a test server: its config file and the admin account.
+
+    The config (``MLFLOW_AUTH_CONFIG_PATH``) keeps the user store in ``database_uri`` and, as
+    the team guide does, lets every member read everything and change only what they created
+    or were given (``default_permission = READ``). The admin account is made at the server's
+    first start from the environment, never from the file.
+    """
+
+    config_path: Path
+    admin_username: str
+    admin_password: str
+
+    @classmethod
+    def create(cls, folder: Path, default_permission: str = "READ") -> ServerAuth:
+        folder.mkdir(parents=True, exist_ok=True)
+        path = folder / "basic_auth.ini"
+        path.write_text(
+            "[mlflow]\n"
+            f"default_permission = {default_permission}\n"
+            f"database_uri = sqlite:///{folder / 'auth.db'}\n"
+            "authorization_function = mlflow.server.auth:authenticate_request_basic_auth\n"
+        )
+        return cls(path, "admin", secrets.token_urlsafe(16))
+
+    def server_env(self) -> dict[str, str]:
+        return {
+            "MLFLOW_AUTH_CONFIG_PATH": str(self.config_path),
+            "MLFLOW_AUTH_ADMIN_USERNAME": self.admin_username,
+            "MLFLOW_AUTH_ADMIN_PASSWORD": self.admin_password,
+            "MLFLOW_FLASK_SERVER_SECRET_KEY": secrets.token_hex(16),
+        }
+
+
 class MlflowServer:
     """``mlflow server`` as a subprocess in its own process group.
 
@@ -285,8 +337,14 @@ class MlflowServer:
     """
 
     def __init__(
-        self, backend_store_uri: str, artifacts_destination: Path, port: int, workdir: Path
+        self,
+        backend_store_uri: str,
+        artifacts_destination: Path,
+        port: int,
+        workdir: Path,
+        auth: ServerAuth | None = None,
     ) -> None:
+        self.auth = auth
         self.backend_store_uri = backend_store_uri
         self.artifacts_destination = Path(artifacts_destination)
         self.port = port
@@ -312,7 +370,24 @@ class MlflowServer:
             "--port", str(self.port),
             # One worker is plenty for a test and spares the shared cores.
             "--workers", "1",
-        ]  # fmt: skip
+        ] + (["--app-name", "basic-auth"] if self.auth else [])  # fmt: skip
+
+    def create_user(self, username: str, password: str) -> None:
+        """Add an account through the auth app's REST API, as the admin."""
+        if self.auth is None:
+            raise RuntimeError("this server has no basic-auth app")
+        token = base64.b64encode(
+            f"{self.auth.admin_username}:{self.auth.admin_password}".encode()
+        ).decode()
+        request = urllib.request.Request(
+            f"{self.url}/api/2.0/mlflow/users/create",
+            data=json.dumps({"username": username, "password": password}).encode(),
+            headers={"Authorization": f"Basic {token}", "Content-Type": "application/json"},
+            method="POST",
+        )
+        with urllib.request.urlopen(request, timeout=30) as resp:  # noqa: S310
+            if resp.status != 200:
+                raise RuntimeError(f"creating user {username!r} answered HTTP {resp.status}")
 
     def healthy(self, timeout: float = 2.0) -> bool:
         """True when ``GET /health`` answers 200."""
@@ -346,6 +421,8 @@ class MlflowServer:
         # Server-side job execution (GenAI jobs: a job runner and several huey consumers) is
         # not used by skymoments; turned off it costs neither processes nor memory.
         env = skymoments_env(MLFLOW_SERVER_ENABLE_JOB_EXECUTION="false")
+        if self.auth is not None:
+            env.update(self.auth.server_env())
         t0 = time.perf_counter()
         with open(self.log_path, "w") as log:
             self.proc = subprocess.Popen(
@@ -439,6 +516,32 @@ def mlflow_server(
             request.config,
             f"mlflow server healthy at {server.url} {seconds:.1f} s after launch "
             f"({time.perf_counter() - t0:.1f} s with the database), database {name}",
+        )
+        yield server
+    finally:
+        server.stop()
+        postgres.drop_database(name)
+
+
+@pytest.fixture(scope="session")
+def mlflow_auth_server(
+    request: pytest.FixtureRequest, postgres: Postgres, tmp_path_factory: pytest.TempPathFactory
+) -> Iterator[MlflowServer]:
+    """A running ``mlflow server --app-name basic-auth`` (see the module docstring)."""
+    root = tmp_path_factory.mktemp("mlflow-auth-server")
+    name = f"skymoments_test_auth_{uuid.uuid4().hex[:12]}"
+    postgres.create_database(name)
+    server = MlflowServer(
+        postgres.database_url(name),
+        root / "artifacts",
+        free_port(),
+        root / "server",
+        auth=ServerAuth.create(root / "auth"),
+    )
+    try:
+        seconds = server.start()
+        _report(
+            request.config, f"basic-auth mlflow server healthy at {server.url} in {seconds:.1f} s"
         )
         yield server
     finally:

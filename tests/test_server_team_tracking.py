@@ -26,7 +26,13 @@ from pathlib import Path
 import pytest
 from mlflow import MlflowClient
 
-from server_fixtures import MlflowServer, mlflow_server, postgres, skymoments_env  # noqa: F401
+from server_fixtures import (  # noqa: F401  (pytest fixtures)
+    MlflowServer,
+    mlflow_auth_server,
+    mlflow_server,
+    postgres,
+    skymoments_env,
+)
 
 pytestmark = [pytest.mark.mlflow_server, pytest.mark.slow]
 
@@ -281,3 +287,78 @@ def test_server_lost_mid_run_fails_the_job_clearly_and_keeps_finished_runs(
         assert set(CONTRACT_ARTIFACTS) <= _artifact_paths(client, child)
     # Nobody could close the interrupted run; it must at least not claim to have finished.
     assert client.get_run(run_id).info.status != "FINISHED"
+
+
+# ---------------------------------------------------------------------------- basic auth
+def _last_line(text: str) -> str:
+    lines = text.strip().splitlines()
+    return lines[-1] if lines else ""
+
+
+def test_basic_auth_server_refuses_clients_without_credentials_and_admits_a_member(
+    mlflow_auth_server: MlflowServer,  # noqa: F811
+    tmp_path,
+    monkeypatch,
+):
+    from skymoments.tracking import tracked_run
+
+    server = mlflow_auth_server
+    password = "member-password-123"
+    server.create_user("member", password)
+    home = tmp_path / "home"
+    (home / ".mlflow").mkdir(parents=True)
+    env = skymoments_env(HOME=str(home), **FAST_HTTP)
+    track = ("tracking=server", f"tracking.uri={server.url}")
+    refused = f"skymoments: the MLflow tracking server at {server.url} refused this client"
+
+    # No credentials: refused before any work, in one line, exit 2.
+    proc = _skymoments("run", "experiment=smoke", *track, cwd=tmp_path, env=env)
+    assert proc.returncode == 2, proc.stderr[-3000:]
+    assert _last_line(proc.stderr).startswith(refused), proc.stderr[-3000:]
+    assert "MLFLOW_TRACKING_USERNAME" in _last_line(proc.stderr)
+    assert "Traceback" not in proc.stderr
+
+    # A wrong password: the same.
+    wrong = {**env, "MLFLOW_TRACKING_USERNAME": "member", "MLFLOW_TRACKING_PASSWORD": "nope"}
+    proc = _skymoments("settle", *track, cwd=tmp_path, env=wrong)
+    assert proc.returncode == 2 and _last_line(proc.stderr).startswith(refused), proc.stderr
+
+    # Credentials on the command line (in the URI) are refused without being used.
+    with_creds = server.url.replace("http://", f"http://member:{password}@")
+    proc = _skymoments(
+        "settle", "tracking=server", f"tracking.uri={with_creds}", cwd=tmp_path, env=env
+    )
+    assert proc.returncode == 2, proc.stderr[-3000:]
+    assert "tracking.uri holds a user name or password" in _last_line(proc.stderr)
+    assert password not in proc.stderr
+
+    # A credentials file that other users can read is refused; at mode 600 it is used.
+    creds = home / ".mlflow" / "credentials"
+    creds.write_text(
+        f"[mlflow]\nmlflow_tracking_username = member\nmlflow_tracking_password = {password}\n"
+    )
+    creds.chmod(0o644)
+    proc = _skymoments("settle", *track, cwd=tmp_path, env=env)
+    assert proc.returncode == 2, proc.stderr[-3000:]
+    assert f"run `chmod 600 {creds}`" in _last_line(proc.stderr)
+    creds.chmod(0o600)
+    proc = _skymoments("settle", *track, cwd=tmp_path, env=env)
+    assert proc.returncode == 0, proc.stderr[-3000:]
+    assert "0 lost" in proc.stdout
+
+    # Credentials from the environment: a run is logged.
+    monkeypatch.setenv("HOME", str(tmp_path / "empty-home"))
+    monkeypatch.setenv("MLFLOW_TRACKING_USERNAME", "member")
+    monkeypatch.setenv("MLFLOW_TRACKING_PASSWORD", password)
+    cfg = {"kind": "server", "uri": server.url, "experiment": "member_study"}
+    with tracked_run({"tracking": cfg}, run_name="authenticated") as run:
+        run.log_metrics({"eval/mse_B": 0.5})
+    # Read back as the admin: the member's run, and nothing from the refused attempts.
+    monkeypatch.setenv("MLFLOW_TRACKING_USERNAME", server.auth.admin_username)
+    monkeypatch.setenv("MLFLOW_TRACKING_PASSWORD", server.auth.admin_password)
+    client = MlflowClient(server.url)
+    stored = client.get_run(run.run_id)
+    assert stored.info.status == "FINISHED"
+    assert stored.data.metrics == {"eval/mse_B": 0.5}
+    assert stored.info.user_id == "member"
+    assert client.get_experiment_by_name(EXPERIMENT) is None

@@ -43,6 +43,7 @@ from mlflow.exceptions import MlflowException
 from skymoments.tracking.settings import TrackingSettings, sqlite_path
 
 __all__ = [
+    "TrackingAccessError",
     "TrackingUnavailableError",
     "client_for",
     "ensure_experiment",
@@ -67,6 +68,21 @@ _PROBE_TIMEOUT_S = 5.0
 
 class TrackingUnavailableError(RuntimeError):
     """The tracking store cannot be reached (server down, wrong URI, network)."""
+
+
+class TrackingAccessError(TrackingUnavailableError):
+    """The store refuses this client: missing or wrong credentials, or credentials kept where
+    others can read them (in the URI, or in a credentials file open to other users)."""
+
+
+# Where MLflow's client reads credentials besides MLFLOW_TRACKING_USERNAME/PASSWORD
+# (mlflow.utils.credentials): an ini file with an [mlflow] section.
+CREDENTIALS_FILE = "~/.mlflow/credentials"
+CREDENTIALS_HINT = (
+    "set MLFLOW_TRACKING_USERNAME and MLFLOW_TRACKING_PASSWORD in the environment, or put "
+    "mlflow_tracking_username and mlflow_tracking_password under [mlflow] in "
+    f"{CREDENTIALS_FILE} (chmod 600); never in the config or on the command line"
+)
 
 
 def _chain(exc: BaseException) -> Iterator[BaseException]:
@@ -118,6 +134,59 @@ def is_connection_error(exc: BaseException) -> bool:
     return False
 
 
+def is_access_error(exc: BaseException) -> bool:
+    """True when ``exc`` (or its cause) is an HTTP 401 or 403 answer of the server."""
+    for item in _chain(exc):
+        code = str(getattr(item, "error_code", "") or "")
+        if code in ("UNAUTHENTICATED", "PERMISSION_DENIED"):
+            return True
+        status = getattr(getattr(item, "response", None), "status_code", None)
+        if status in (401, 403):
+            return True
+        text = str(item).lower()
+        if "error code 401" in text or "error code 403" in text:
+            return True
+    return False
+
+
+def access_message(uri: str, exc: BaseException) -> str:
+    """A one-line message: the server refused us, and where credentials go."""
+    first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    return (
+        f"the MLflow tracking server at {uri} refused this client ({first[:200]}); "
+        f"{CREDENTIALS_HINT}; ask the server's admin for an account or permission"
+    )
+
+
+def check_credentials_kept_safe(uri: str) -> None:
+    """Refuse credentials in the tracking URI, and a credentials file others can read.
+
+    Raises
+    ------
+    TrackingAccessError
+    """
+    from urllib.parse import urlsplit
+
+    parts = urlsplit(uri)
+    if parts.username or parts.password:
+        shown = parts._replace(netloc=parts.hostname or "").geturl()
+        raise TrackingAccessError(
+            f"tracking.uri holds a user name or password ({shown} with credentials): a URI "
+            f"is seen in configs, logs and the process list; give {shown} and "
+            f"{CREDENTIALS_HINT}"
+        )
+    path = Path(os.path.expanduser(CREDENTIALS_FILE))
+    try:
+        mode = path.stat().st_mode
+    except OSError:
+        return
+    if mode & 0o077:
+        raise TrackingAccessError(
+            f"{path} holds tracking credentials but other users may read it (mode "
+            f"{mode & 0o777:o}); run `chmod 600 {path}`"
+        )
+
+
 def unavailable_message(uri: str, detail: str = "") -> str:
     """A message naming the URI and what to check."""
     hint = (
@@ -152,6 +221,8 @@ def with_retries(settings: TrackingSettings, what: str, fn: Callable[[], T]) -> 
         try:
             return fn()
         except Exception as exc:
+            if settings.is_http and is_access_error(exc):
+                raise TrackingAccessError(access_message(settings.tracking_uri, exc)) from exc
             if settings.is_http and is_connection_error(exc):
                 raise TrackingUnavailableError(
                     unavailable_message(settings.tracking_uri, f"while trying to {what}: {exc}")
@@ -216,6 +287,7 @@ def prepare_store(settings: TrackingSettings) -> None:
         if uri in _PREPARED:
             return
     if settings.is_http:
+        check_credentials_kept_safe(uri)
         probe_server(uri)
     else:
         db = sqlite_path(uri)
