@@ -11,13 +11,13 @@ import pytest
 from hydra import compose, initialize_config_dir
 from omegaconf import OmegaConf
 
-from skymoments.commands.evaluate import (
+from skymoments.config import conf_dir
+from skymoments.study.reevaluate import (
     apply_overrides,
     evaluate_run,
     rewrite_argv,
     scenario_overrides,
 )
-from skymoments.config import conf_dir
 
 CALIB = (
     "calib/z_mean_E",

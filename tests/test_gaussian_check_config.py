@@ -17,9 +17,9 @@ def _compose(*overrides: str):
 
 @pytest.fixture(scope="module")
 def check():
-    from skymoments.commands.run import baselines
     from skymoments.sky.build import scenario_from_config
-    from skymoments.synthesis.pipeline import training_image
+    from skymoments.sky.training_image import training_image
+    from skymoments.study.baselines import baselines
 
     cfg = validate(_compose())
     scenario = scenario_from_config(cfg)

@@ -21,11 +21,9 @@ DEFAULT_NAME = "compare.html"
 def _report_path(node: DictConfig) -> Path:
     if node.get("out"):
         return Path(str(node.out)).expanduser().absolute()
-    from hydra.core.hydra_config import HydraConfig
+    from skymoments.study.jobs import job_dir
 
-    if HydraConfig.initialized():
-        return Path(HydraConfig.get().runtime.output_dir) / DEFAULT_NAME
-    return Path.cwd() / DEFAULT_NAME
+    return job_dir() / DEFAULT_NAME
 
 
 def compare(cfg: DictConfig):

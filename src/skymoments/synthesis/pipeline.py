@@ -1,13 +1,13 @@
 """Build (or reuse) the synthesis bank a config describes, and judge and log its quality.
 
 Shared by ``skymoments synthesize`` and ``skymoments run`` (``augment.bank``), so that the
-training image, the bank key and the ``synth/...`` metrics are the same in both.
+bank key and the ``synth/...`` metrics are the same in both; the training image itself is
+:func:`skymoments.sky.training_image.training_image`.
 """
 
 from __future__ import annotations
 
 import contextlib
-from pathlib import Path
 
 import numpy as np
 from omegaconf import DictConfig, OmegaConf
@@ -28,34 +28,6 @@ def settings_from_config(node):
     settings = SynthesisSettings(**kw)
     settings.validate()
     return settings
-
-
-def training_image(cfg: DictConfig):
-    """The training image (2, n, n) and a description of its source.
-
-    ``synthesis.image`` when given; otherwise one draw of ``sky.foreground`` from the
-    ``training_image`` seed stream.
-    """
-    from skymoments.maps.geometry import FlatPatch
-    from skymoments.synthesis.sources import load_training_image
-
-    node = cfg.synthesis
-    patch = FlatPatch(int(cfg.patch.npix), float(cfg.patch.pixel_arcmin))
-    if node.get("image"):
-        img = load_training_image(
-            str(node.image),
-            key=node.get("image_key"),
-            lon_deg=node.get("lon_deg"),
-            lat_deg=node.get("lat_deg"),
-            patch=patch,
-        )
-        return img, str(Path(str(node.image)).expanduser().resolve()), patch
-    from skymoments.sky.build import foreground_from_config
-    from skymoments.sky.seeds import stream
-
-    fg = foreground_from_config(cfg.sky.foreground)
-    img = fg.draw(patch, stream(int(cfg.seed), "training_image"), 1)[0]
-    return img, f"sky.foreground draw (seed {int(cfg.seed)}, stream training_image)", patch
 
 
 def mosaic_figure(target: np.ndarray, images: np.ndarray, columns: int = MOSAIC_COLUMNS):
@@ -101,6 +73,7 @@ def run_synthesis(cfg: DictConfig, progress=None) -> dict:
     """
     import torch
 
+    from skymoments.sky.training_image import training_image
     from skymoments.synthesis.bank import ensure_bank
 
     node = cfg.synthesis
