@@ -1,4 +1,4 @@
-"""Foreground models: the Planck dust power law, the non-Gaussian filaments, the image bank."""
+"""Foreground models: the dust-like power law, the non-Gaussian filaments, the image bank."""
 
 from __future__ import annotations
 
@@ -30,8 +30,8 @@ def _edges(patch: FlatPatch, nbins: int = 20) -> np.ndarray:
 # ---------------------------------------------------------------- gaussian power law
 
 
-def test_gaussian_power_law_slope_and_amplitude_match_planck():
-    # Planck Intermediate Results XXX (arXiv:1409.5738): C_ell^EE, BB ~ ell^-2.42 and
+def test_gaussian_power_law_slope_and_amplitude_match_the_dust_like_law():
+    # Planck Intermediate Results XXX (A&A 586, A133, 2016): C_ell^EE, BB ~ ell^-2.42 and
     # BB/EE = 0.5. Fit the measured EE with the exactly binned model
     # A * <(ell/80)^alpha>_bin by weighted least squares in log C, weights from the
     # cosmic variance of each bin (Var C_b = 2 sum_k C_k^2 / N_b^2 / n, the mode and its

@@ -12,14 +12,18 @@ from skymoments.synthesis import bank as bank_mod
 from skymoments.synthesis.bank import content_hash, ensure_bank, load_bank
 from skymoments.synthesis.sources import load_training_image
 from skymoments.synthesis.synthesize import (
+    LEGACY_NAMES,
     SynthesisSettings,
     check_image,
     edge_discontinuity,
     prepare_target,
     synthesize,
 )
+from skymoments.synthesis.wph import LEGACY_FAMILIES
 
-TINY = SynthesisSettings(n_images=3, J=2, L=2, max_iter=4, batch=2, delta_j=1, tol=0.0)
+TINY = SynthesisSettings(
+    n_images=3, n_scales=2, n_orientations=2, max_iter=4, batch=2, scale_reach=1, tol=0.0
+)
 
 
 def _image(seed=0, n=16):
@@ -109,14 +113,16 @@ def test_bad_images_are_refused(image, match):
 
 def test_bad_scales_are_refused():
     img = _image()
-    with pytest.raises(ValueError, match="smaller than 2\\^J"):
-        synthesize(img, SynthesisSettings(n_images=1, J=5, L=2))
-    with pytest.raises(ValueError, match="L \\(orientations"):
-        synthesize(img, SynthesisSettings(n_images=1, J=2, L=40))
+    with pytest.raises(ValueError, match="smaller than 2\\^n_scales"):
+        synthesize(img, SynthesisSettings(n_images=1, n_scales=5, n_orientations=2))
+    with pytest.raises(ValueError, match="n_orientations \\(orientations"):
+        synthesize(img, SynthesisSettings(n_images=1, n_scales=2, n_orientations=40))
     with pytest.raises(ValueError, match="boundary"):
-        synthesize(img, SynthesisSettings(n_images=1, J=2, L=2, boundary="wrap"))
+        synthesize(
+            img, SynthesisSettings(n_images=1, n_scales=2, n_orientations=2, boundary="wrap")
+        )
     with pytest.raises(ValueError, match="n_images"):
-        synthesize(img, SynthesisSettings(n_images=0, J=2, L=2))
+        synthesize(img, SynthesisSettings(n_images=0, n_scales=2, n_orientations=2))
 
 
 def test_non_periodic_image_warns_and_boundary_options():
@@ -139,7 +145,10 @@ def test_non_periodic_image_warns_and_boundary_options():
     np.testing.assert_array_equal(mirrored[0, 16:, :16], cut[0, ::-1, :])
     assert apod.shape == cut.shape
     out = synthesize(
-        cut, SynthesisSettings(n_images=1, J=2, L=2, delta_j=1, max_iter=2, boundary="mirror")
+        cut,
+        SynthesisSettings(
+            n_images=1, n_scales=2, n_orientations=2, scale_reach=1, max_iter=2, boundary="mirror"
+        ),
     )
     assert out.images.shape == (1, 2, 16, 16)
 
@@ -189,3 +198,41 @@ def test_healpix_training_image_is_cut_at_the_centre(tmp_path):
     # The reader must hand back exactly the foundation's cut (maps.healpix.cut_patch).
     want = cut_patch(maps[1:], 40.0, -30.0, patch)
     np.testing.assert_allclose(got, want, rtol=1e-10, atol=1e-12)
+
+
+def _as_v1(meta_path):
+    """Rewrite a bank's metadata as a bank of format /1 wrote it (the papers' letters)."""
+    meta = json.loads(meta_path.read_text())
+    old = {v: k for k, v in LEGACY_NAMES.items()}
+    meta["format"] = "skymoments-synthesis-bank/1"
+    meta["settings"] = {old.get(k, k): v for k, v in meta["settings"].items()}
+    fam = {v: k for k, v in LEGACY_FAMILIES.items()}
+    meta["n_moments"] = {fam.get(k, k): v for k, v in meta["n_moments"].items()}
+    meta_path.write_text(json.dumps(meta))
+    return meta
+
+
+def test_bank_written_before_the_renames_still_loads(tmp_path):
+    path, images, _ = ensure_bank(_image(3), TINY, tmp_path, seed=1)
+    v1 = _as_v1(path.with_suffix(".json"))
+    assert "scale_reach" not in v1["settings"] and "delta_j" in v1["settings"]
+    loaded, meta = load_bank(path)
+    np.testing.assert_array_equal(loaded, images)
+    assert meta["settings"]["scale_reach"] == 1 and meta["settings"]["n_scales"] == 2
+    assert "delta_j" not in meta["settings"] and "J" not in meta["settings"]
+    assert "wave_power" in meta["n_moments"] and "S11" not in meta["n_moments"]
+    # A format this version does not know is refused with what to do.
+    raw = json.loads(path.with_suffix(".json").read_text())
+    raw["format"] = "skymoments-synthesis-bank/99"
+    path.with_suffix(".json").write_text(json.dumps(raw))
+    with pytest.raises(ValueError, match="has format .*bank/99.*rebuild"):
+        load_bank(path)
+
+
+def test_settings_under_former_names_are_refused_with_the_new_name():
+    with pytest.raises(ValueError, match="synthesis.delta_j is now synthesis.scale_reach"):
+        SynthesisSettings.from_mapping({"n_images": 2, "delta_j": 1})
+    with pytest.raises(ValueError, match="synthesis.J is now synthesis.n_scales"):
+        SynthesisSettings.from_mapping({"J": 3})
+    s = SynthesisSettings.from_mapping({"n_scales": 3, "scale_reach": 1, "image": "x.npy"})
+    assert (s.n_scales, s.scale_reach) == (3, 1)

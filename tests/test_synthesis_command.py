@@ -23,7 +23,7 @@ def test_synthesize_writes_bank_and_reuses_it(tmp_path):
     args = [
         sys.executable, "-m", "skymoments.cli", "synthesize",
         f"synthesis.image={tmp_path / 'img.npy'}", "synthesis.n_images=3",
-        f"synthesis.out={tmp_path / 'banks'}", "synthesis.max_iter=10", "synthesis.J=4",
+        f"synthesis.out={tmp_path / 'banks'}", "synthesis.max_iter=10", "synthesis.n_scales=4",
         "synthesis.threads=1", "patch=flat32", f"tracking.root={tmp_path / 'runs'}",
     ]  # fmt: skip
     proc = subprocess.run(args, cwd=tmp_path, capture_output=True, text=True, timeout=600)
@@ -47,10 +47,10 @@ def test_bad_setting_is_refused_before_work(tmp_path):
     np.save(tmp_path / "img.npy", _filaments_image())
     args = [
         sys.executable, "-m", "skymoments.cli", "synthesize",
-        f"synthesis.image={tmp_path / 'img.npy'}", "synthesis.J=9", "patch=flat32",
+        f"synthesis.image={tmp_path / 'img.npy'}", "synthesis.n_scales=9", "patch=flat32",
         f"synthesis.out={tmp_path / 'banks'}", f"tracking.root={tmp_path / 'runs'}",
     ]  # fmt: skip
     proc = subprocess.run(args, cwd=tmp_path, capture_output=True, text=True, timeout=600)
     assert proc.returncode != 0
-    assert "2^J" in proc.stderr
+    assert "2^n_scales" in proc.stderr
     assert not (tmp_path / "banks").exists() or not list((tmp_path / "banks").glob("*.npz"))

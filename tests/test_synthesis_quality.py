@@ -67,7 +67,9 @@ def filament_synthesis():
     target = fg.draw(patch, rng, 1)[0]
     truth = fg.draw(patch, rng, 32)
     # The configured defaults (conf/synthesis/default.yaml) except the batch size.
-    settings = SynthesisSettings(n_images=4, batch=4, J=5, L=4, max_iter=200, tol=1e-3)
+    settings = SynthesisSettings(
+        n_images=4, batch=4, n_scales=5, n_orientations=4, max_iter=200, tol=1e-3
+    )
     res = synthesize(target, settings, seed=11)
     gauss = gaussian_surrogate(target, 4, np.random.default_rng(99))
     return patch, target, truth, res, gauss

@@ -64,17 +64,17 @@ def test_littlewood_paley_bounds_are_a_frame():
 
 
 def test_s11_sum_matches_variance_within_the_bound(rng):
-    # Parseval: sum_lambda S11(tau=0) + low-pass variance = (1/N^2) sum_w |x_hat|^2 A(w), so
+    # Parseval: sum_lambda wave_power(tau=0) + low-pass variance = (1/N^2) sum_w |x_hat|^2 A(w), so
     # it lies between A_min and A_max times the variance (wavelets.py docstring).
     x = _smooth_field(rng, n=32, c=1)[0]
     J, L = 4, 4
     bank = wavelet_bank(x.shape, J, L)
     lo, hi = bank.lp_bounds
     var = np.var(x)
-    wph = WPHStatistics(x.shape, WPHConfig(J=J, L=L, delta_n=0), channels=1)
+    wph = WPHStatistics(x.shape, WPHConfig(n_scales=J, n_orientations=L, shift_reach=0), channels=1)
     stats = wph.forward(x[None])  # raw moments (normalization 1 without a reference)
-    s11 = sum(float(t[0].real.sum()) for t in stats["S11"])  # delta_n = 0: tau = 0 only
-    low = float(stats["L"][1][0].real.sum())  # low-pass variance
+    s11 = sum(float(t[0].real.sum()) for t in stats["wave_power"])  # shift_reach = 0: tau = 0 only
+    low = float(stats["lowpass"][1][0].real.sum())  # low-pass variance
     total = s11 + low
     assert total == pytest.approx(_s11_sum(x, J, L), rel=1e-5)  # float32 statistics
     assert lo * var <= total <= hi * var
@@ -82,22 +82,22 @@ def test_s11_sum_matches_variance_within_the_bound(rng):
 
 def test_bank_is_cached_and_checks_its_arguments():
     assert wavelet_bank((32, 32), 3, 4) is wavelet_bank((32, 32), 3, 4)
-    with pytest.raises(ValueError, match="smaller than 2\\^J"):
+    with pytest.raises(ValueError, match="smaller than 2\\^n_scales"):
         wavelet_bank((16, 16), 5, 4)
-    with pytest.raises(ValueError, match="L \\(orientations"):
+    with pytest.raises(ValueError, match="n_orientations \\(orientations"):
         wavelet_bank((32, 32), 3, 1)
-    with pytest.raises(ValueError, match="L \\(orientations"):
+    with pytest.raises(ValueError, match="n_orientations \\(orientations"):
         wavelet_bank((32, 32), 3, 17)
-    with pytest.raises(ValueError, match="J \\(number"):
+    with pytest.raises(ValueError, match="n_scales \\(number"):
         wavelet_bank((32, 32), 0, 4)
-    with pytest.raises(ValueError, match="delta_l"):
-        WPHConfig(J=3, L=4, delta_l=4).validate((32, 32))
+    with pytest.raises(ValueError, match="orientation_reach"):
+        WPHConfig(n_scales=3, n_orientations=4, orientation_reach=4).validate((32, 32))
 
 
 @pytest.fixture(scope="module")
 def wph_and_map():
     x = _smooth_field(np.random.default_rng(7), n=32, c=2)
-    cfg = WPHConfig(J=4, L=4, delta_j=2, delta_l=1, delta_n=1)
+    cfg = WPHConfig(n_scales=4, n_orientations=4, scale_reach=2, orientation_reach=1, shift_reach=1)
     return WPHStatistics((32, 32), cfg, channels=2, reference=x, dtype=torch.float64), x
 
 
@@ -121,12 +121,12 @@ def test_rotation_by_180_degrees(wph_and_map):
     pred = wph.flatten(wph.rotate180(s))
     np.testing.assert_allclose(wph.flatten(sr).numpy(), pred.numpy(), atol=1e-10, rtol=0)
     # The auto-covariance families over half-plane shifts are invariant as they are.
-    for fam in ("S11", "S00"):
+    for fam in ("wave_power", "envelope"):
         for a, b, tag in zip(s[fam], sr[fam], wph._tags[fam], strict=True):
             if tag == "inv":
                 np.testing.assert_allclose(b.numpy(), a.numpy(), atol=1e-10, rtol=0)
     # The tau = 0 cross-scale moments keep their modulus (they are conjugated).
-    for fam in ("C01", "Cphase"):
+    for fam in ("xscale_envelope", "xscale_phase"):
         for a, b in zip(s[fam], sr[fam], strict=True):
             np.testing.assert_allclose(b.abs().numpy(), a.abs().numpy(), atol=1e-10, rtol=0)
 
@@ -134,16 +134,16 @@ def test_rotation_by_180_degrees(wph_and_map):
 def test_target_normalization_and_counts(wph_and_map):
     wph, x = wph_and_map
     s = wph.forward(x)
-    # Auto S11 at tau = 0 of the reference is <|W|^2> / sigma_1^2 = 1 by construction.
-    for t in s["S11"][::2]:
+    # Auto wave_power at tau = 0 of the reference is <|W|^2> / sigma_1^2 = 1 by construction.
+    for t in s["wave_power"][::2]:
         np.testing.assert_allclose(t[..., 0].real.numpy(), 1.0, rtol=1e-10)
     counts = wph.count()
     assert counts["total"] == wph.moments(x).shape[1]
     assert counts["total"] == sum(v for k, v in counts.items() if k != "total")
-    # S01: 4 channel pairs x L orientations x (5 shifts at j < 3, 5 at j = 3 within 16 px).
-    assert counts["S01"] == 4 * 4 * 5 * 4
-    # Cphase: (J - 1) + (J - 2) scale pairs x L orientations x 4 channel pairs.
-    assert counts["Cphase"] == (3 + 2) * 4 * 4
+    # envelope_wave: 4 channel pairs x L orientations x (5 shifts at j < 3, 5 at j = 3: 16 px).
+    assert counts["envelope_wave"] == 4 * 4 * 5 * 4
+    # xscale_phase: (J - 1) + (J - 2) scale pairs x L orientations x 4 channel pairs.
+    assert counts["xscale_phase"] == (3 + 2) * 4 * 4
 
 
 def test_gradcheck_float64_tiny_map():
@@ -151,7 +151,11 @@ def test_gradcheck_float64_tiny_map():
     rng = np.random.default_rng(3)
     ref = _smooth_field(rng, n=8, c=2)
     wph = WPHStatistics(
-        (8, 8), WPHConfig(J=2, L=2, delta_j=1, delta_l=1, delta_n=1), 2, ref, dtype=torch.float64
+        (8, 8),
+        WPHConfig(n_scales=2, n_orientations=2, scale_reach=1, orientation_reach=1, shift_reach=1),
+        2,
+        ref,
+        dtype=torch.float64,
     )
     x = torch.tensor(_smooth_field(rng, n=8, c=2)[None], dtype=torch.float64, requires_grad=True)
 

@@ -37,12 +37,13 @@ __all__ = [
     "make_foreground",
 ]
 
-# Planck Intermediate Results XXX (arXiv:1409.5738): C_ell^EE, C_ell^BB ~ ell^-2.42 over
-# 40 < ell < 600 and BB/EE = 0.5, amplitudes quoted as D_ell at ell = 80 (REFERENCES.md
-# "Check values"; the pivot multipole recalled from memory).
-PLANCK_ALPHA = -2.42
-PLANCK_BB_OVER_EE = 0.5
-PLANCK_ELL_PIVOT = 80.0
+# A dust-like polarized power law, the values measured for Galactic dust at high latitude
+# by Planck Intermediate Results XXX (A&A 586, A133, 2016, arXiv:1409.5738): C_ell^EE,
+# C_ell^BB ~ ell^-2.42 over 40 < ell < 600 and BB/EE = 0.5, amplitudes quoted as D_ell at
+# ell = 80 (the pivot multipole recalled from memory).
+DUST_LIKE_SLOPE = -2.42
+DUST_LIKE_BB_OVER_EE = 0.5
+DUST_LIKE_ELL_PIVOT = 80.0
 
 
 def _check_n(n) -> int:
@@ -99,8 +100,8 @@ class GaussianPowerLaw:
 
     ``C_ell^EE = C_p (ell / ell_pivot)^alpha_ee`` and ``C_ell^BB = bb_over_ee * C_p
     (ell / ell_pivot)^alpha_bb`` with ``C_p = 2 pi amplitude_uk^2 / (ell_p (ell_p + 1))``,
-    i.e. ``D_ell^EE(ell_pivot) = amplitude_uk^2``. Defaults are the Planck dust values
-    (Planck Intermediate Results XXX, arXiv:1409.5738).
+    i.e. ``D_ell^EE(ell_pivot) = amplitude_uk^2``. Defaults are a dust-like power law, the
+    values measured for Galactic dust (Planck Intermediate Results XXX, A&A 586, A133, 2016).
 
     Parameters
     ----------
@@ -119,10 +120,10 @@ class GaussianPowerLaw:
     def __init__(
         self,
         amplitude_uk: float = 1.0,
-        alpha_ee: float = PLANCK_ALPHA,
-        alpha_bb: float = PLANCK_ALPHA,
-        bb_over_ee: float = PLANCK_BB_OVER_EE,
-        ell_pivot: float = PLANCK_ELL_PIVOT,
+        alpha_ee: float = DUST_LIKE_SLOPE,
+        alpha_bb: float = DUST_LIKE_SLOPE,
+        bb_over_ee: float = DUST_LIKE_BB_OVER_EE,
+        ell_pivot: float = DUST_LIKE_ELL_PIVOT,
     ) -> None:
         self.amplitude_uk = _positive(amplitude_uk, "amplitude_uk")
         self.alpha_ee = _finite(alpha_ee, "alpha_ee")
@@ -280,7 +281,7 @@ class Filaments:
         Standard deviation of the polarization angle about the perpendicular, degrees.
     diffuse_fraction : float
         Fraction in [0, 1) of the Q variance given to a faint Gaussian diffuse component
-        with the Planck dust spectrum (:class:`GaussianPowerLaw` shape).
+        with the dust-like spectrum (:class:`GaussianPowerLaw` shape).
     """
 
     name = "filaments"

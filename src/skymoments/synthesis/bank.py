@@ -28,9 +28,19 @@ import numpy as np
 
 import skymoments
 from skymoments.atomic import atomic_path, save_npz
-from skymoments.synthesis.synthesize import SynthesisSettings, check_image, synthesize
+from skymoments.synthesis.synthesize import (
+    SynthesisSettings,
+    check_image,
+    renamed_settings,
+    synthesize,
+)
+from skymoments.synthesis.wph import LEGACY_FAMILIES
 
-FORMAT = "skymoments-synthesis-bank/1"
+# /2: settings and moment families under descriptive names (n_scales, scale_reach, ...,
+# wave_power, ...); a /1 bank (the papers' letters J, delta_j, ..., S11, ...) still loads,
+# its recorded names translated to the current ones.
+FORMAT = "skymoments-synthesis-bank/2"
+FORMAT_V1 = "skymoments-synthesis-bank/1"
 
 
 def default_bank_dir() -> Path:
@@ -102,11 +112,20 @@ def load_bank(path) -> tuple[np.ndarray, dict]:
         meta = json.loads(meta_path.read_text())
     except json.JSONDecodeError as err:
         raise ValueError(f"bank metadata {meta_path} is not valid JSON ({err}); rebuild") from err
-    if meta.get("format") != FORMAT or meta.get("images_sha256") != _file_sha256(npz):
+    fmt = meta.get("format")
+    if fmt not in (FORMAT, FORMAT_V1):
         raise ValueError(
-            f"bank metadata {meta_path} does not match {npz.name} (format or checksum); "
+            f"bank metadata {meta_path} has format {fmt!r}; this version reads {FORMAT} and "
+            f"{FORMAT_V1}: rebuild the bank with this version (or read it with the one that "
+            "wrote it)"
+        )
+    if meta.get("images_sha256") != _file_sha256(npz):
+        raise ValueError(
+            f"bank metadata {meta_path} does not match {npz.name} (checksum); "
             "the bank is incomplete or was modified: rebuild it"
         )
+    if fmt == FORMAT_V1:
+        meta = _from_v1(meta)
     with np.load(npz) as f:
         if "images" not in f:
             raise ValueError(f"{npz} has no array 'images'; rebuild the bank")
@@ -116,6 +135,17 @@ def load_bank(path) -> tuple[np.ndarray, dict]:
             f"{npz} holds images of shape {images.shape}, metadata says {meta.get('shape')}"
         )
     return images, meta
+
+
+def _from_v1(meta: dict) -> dict:
+    """A /1 bank's metadata under the current names of settings and moment families."""
+    out = dict(meta)
+    if isinstance(meta.get("settings"), dict):
+        out["settings"] = renamed_settings(meta["settings"])
+    if isinstance(meta.get("n_moments"), dict):
+        out["n_moments"] = {LEGACY_FAMILIES.get(k, k): v for k, v in meta["n_moments"].items()}
+    out["format_read"] = FORMAT_V1
+    return out
 
 
 def ensure_bank(
@@ -157,7 +187,7 @@ def ensure_bank(
     settings.validate()
     if isinstance(seed, bool) or not isinstance(seed, int | np.integer) or seed < 0:
         raise ValueError(f"synthesis seed must be a non-negative integer, got {seed!r}")
-    img = check_image(image, settings.J, settings.L)
+    img = check_image(image, settings.n_scales, settings.n_orientations)
     image_hash = content_hash(np.asarray(image))
     key = bank_key(image_hash, settings, int(seed))
     out = Path(out_dir).expanduser() if out_dir is not None else default_bank_dir()

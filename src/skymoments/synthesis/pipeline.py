@@ -20,14 +20,7 @@ def settings_from_config(node):
     from skymoments.synthesis.synthesize import SynthesisSettings
 
     data = OmegaConf.to_container(node, resolve=True) if isinstance(node, DictConfig) else node
-    keys = ("n_images", "J", "L", "delta_n", "delta_j", "delta_l", "max_iter", "tol", "batch")
-    kw = {k: data[k] for k in keys if data.get(k) is not None}
-    if "tol" in kw:
-        kw["tol"] = float(kw["tol"])
-    kw["boundary"] = str(data.get("boundary", "periodic"))
-    settings = SynthesisSettings(**kw)
-    settings.validate()
-    return settings
+    return SynthesisSettings.from_mapping(data)
 
 
 def mosaic_figure(target: np.ndarray, images: np.ndarray, columns: int = MOSAIC_COLUMNS):

@@ -21,7 +21,7 @@ import math
 import time
 import warnings
 from collections.abc import Callable
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass, field, fields
 
 import numpy as np
 import torch
@@ -39,6 +39,15 @@ EDGE_RATIO_WARN = 4.0
 CHECK_EVERY = 10
 # Width of the cosine taper of boundary="apodize", as a fraction of the side.
 APODIZE_WIDTH = 0.15
+# Former names of the settings (they were the papers' letters); a config
+# that still uses one is refused with the new name, a bank that recorded them still loads.
+LEGACY_NAMES = {
+    "J": "n_scales",
+    "L": "n_orientations",
+    "delta_n": "shift_reach",
+    "delta_j": "scale_reach",
+    "delta_l": "orientation_reach",
+}
 
 
 @dataclass(frozen=True)
@@ -49,8 +58,9 @@ class SynthesisSettings:
     ----------
     n_images : int
         Number of maps to synthesize (M).
-    J, L, delta_n, delta_j, delta_l : int
-        WPH statistics (:class:`skymoments.synthesis.wph.WPHConfig`).
+    n_scales, n_orientations, shift_reach, scale_reach, orientation_reach : int
+        WPH statistics (:class:`skymoments.synthesis.wph.WPHConfig`; the papers' J, L,
+        Delta_n, Delta_j, Delta_l, see the table in :mod:`skymoments.synthesis.wph`).
     max_iter : int
         L-BFGS iteration cap per batch.
     tol : float
@@ -63,11 +73,11 @@ class SynthesisSettings:
     """
 
     n_images: int = 16
-    J: int = 5
-    L: int = 4
-    delta_n: int = 1
-    delta_j: int = 2
-    delta_l: int = 1
+    n_scales: int = 5
+    n_orientations: int = 4
+    shift_reach: int = 1
+    scale_reach: int = 2
+    orientation_reach: int = 1
     max_iter: int = 200
     tol: float = 1e-3
     batch: int = 8
@@ -75,7 +85,11 @@ class SynthesisSettings:
 
     def wph_config(self) -> WPHConfig:
         return WPHConfig(
-            J=self.J, L=self.L, delta_j=self.delta_j, delta_l=self.delta_l, delta_n=self.delta_n
+            n_scales=self.n_scales,
+            n_orientations=self.n_orientations,
+            scale_reach=self.scale_reach,
+            orientation_reach=self.orientation_reach,
+            shift_reach=self.shift_reach,
         )
 
     def validate(self) -> None:
@@ -93,6 +107,39 @@ class SynthesisSettings:
 
     def as_dict(self) -> dict:
         return asdict(self)
+
+    @classmethod
+    def from_mapping(cls, data) -> SynthesisSettings:
+        """Settings from the ``synthesis`` config node (other keys of the node ignored).
+
+        Raises
+        ------
+        ValueError
+            A key under its former name (``J``, ``delta_j``, ...: say which it is now), or
+            a bad value (:meth:`validate`).
+        """
+        old = [k for k in LEGACY_NAMES if k in data]
+        if old:
+            raise ValueError(
+                "synthesis settings renamed: "
+                + ", ".join(f"synthesis.{k} is now synthesis.{LEGACY_NAMES[k]}" for k in old)
+                + "; rename the key(s) in your config or overrides"
+            )
+        names = [f.name for f in fields(cls)]
+        kw = {k: data[k] for k in names if data.get(k) is not None}
+        if "tol" in kw:
+            kw["tol"] = float(kw["tol"])
+        if "boundary" in kw:
+            kw["boundary"] = str(kw["boundary"])
+        settings = cls(**kw)
+        settings.validate()
+        return settings
+
+
+def renamed_settings(settings: dict) -> dict:
+    """A bank's recorded settings with keys of the former names (:data:`LEGACY_NAMES`)
+    under their current ones; current names pass through unchanged."""
+    return {LEGACY_NAMES.get(k, k): v for k, v in settings.items()}
 
 
 @dataclass
@@ -125,13 +172,16 @@ class SynthesisResult:
     history: list[float] = field(default_factory=list)
 
 
-def check_image(image, J: int | None = None, L: int | None = None) -> np.ndarray:
+def check_image(
+    image, n_scales: int | None = None, n_orientations: int | None = None
+) -> np.ndarray:
     """Validate a training image and return it as float64, shape (C, n, n).
 
     Raises
     ------
     ValueError
-        Wrong shape, NaN/inf, a constant channel, a side below 2^J, or J/L out of range.
+        Wrong shape, NaN/inf, a constant channel, a side below 2^n_scales, or scales/orientations
+        out of range.
     """
     arr = np.asarray(image)
     if arr.ndim == 2:
@@ -157,8 +207,12 @@ def check_image(image, J: int | None = None, L: int | None = None) -> np.ndarray
             f"{[int(i) for i in np.nonzero(std <= 1e-12 * scale)[0]]}: there is nothing to "
             "synthesize; check that the right map or field was read"
         )
-    if J is not None or L is not None:
-        check_bank_args(arr.shape[1:], 1 if J is None else J, 2 if L is None else L)
+    if n_scales is not None or n_orientations is not None:
+        check_bank_args(
+            arr.shape[1:],
+            1 if n_scales is None else n_scales,
+            2 if n_orientations is None else n_orientations,
+        )
     return arr
 
 
@@ -283,7 +337,7 @@ def synthesize(
     SynthesisResult
     """
     settings.validate()
-    x_img = check_image(image, settings.J, settings.L)
+    x_img = check_image(image, settings.n_scales, settings.n_orientations)
     settings.wph_config().validate(x_img.shape[1:])
     target = prepare_target(x_img, settings.boundary)
     n = x_img.shape[-1]
@@ -338,7 +392,7 @@ def synthesize(
             cur = float(last["per"].mean())
             if not math.isfinite(cur):
                 raise FloatingPointError(
-                    "the synthesis loss became NaN or infinite; lower synthesis.J or check "
+                    "the synthesis loss became NaN or infinite; lower synthesis.n_scales or check "
                     "the training image"
                 )
             history.append(cur)

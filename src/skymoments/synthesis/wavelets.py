@@ -55,8 +55,9 @@ class WaveletBank:
     ----------
     shape : (int, int)
         Map shape ``(ny, nx)`` in pixels.
-    J, L : int
-        Number of dyadic scales and of orientations per half turn.
+    n_scales, n_orientations : int
+        Number of dyadic scales (J of the module docstring) and of orientations per half
+        turn (L).
     full_angle : bool
         Orientations over ``[0, 2 pi)`` (``2 L`` of them) instead of ``[0, pi)``.
     psi : ndarray, shape (J, n_theta, ny, nx), float64
@@ -69,8 +70,8 @@ class WaveletBank:
     """
 
     shape: tuple[int, int]
-    J: int
-    L: int
+    n_scales: int
+    n_orientations: int
     full_angle: bool
     psi: np.ndarray
     phi: np.ndarray
@@ -96,20 +97,23 @@ class WaveletBank:
         )
 
 
-def check_bank_args(shape: tuple[int, int], J: int, L: int) -> None:
+def check_bank_args(shape: tuple[int, int], n_scales: int, n_orientations: int) -> None:
     """Raise ValueError for scales or orientations that the map cannot support."""
     ny, nx = shape
+    J, L = n_scales, n_orientations
     if not isinstance(J, int | np.integer) or J < 1:
-        raise ValueError(f"J (number of dyadic scales) must be an integer >= 1, got {J!r}")
+        raise ValueError(f"n_scales (number of dyadic scales) must be an integer >= 1, got {J!r}")
     if not isinstance(L, int | np.integer) or not MIN_L <= L <= MAX_L:
         # L = 1 would be a half-plane indicator, blind on the line where it switches.
         raise ValueError(
-            f"L (orientations per half turn) must be an integer in [{MIN_L}, {MAX_L}], got {L!r}"
+            f"n_orientations (orientations per half turn) must be an integer in "
+            f"[{MIN_L}, {MAX_L}], got {L!r}"
         )
     if min(ny, nx) < 2**J:
         raise ValueError(
-            f"a {ny}x{nx} map is smaller than 2^J = {2**J} pixels, the size of the coarsest "
-            f"wavelet; use J <= {int(np.floor(np.log2(min(ny, nx))))} or a larger image"
+            f"a {ny}x{nx} map is smaller than 2^n_scales = {2**J} pixels, the size of the "
+            f"coarsest wavelet; use n_scales <= {int(np.floor(np.log2(min(ny, nx))))} or a "
+            "larger image"
         )
 
 
@@ -131,17 +135,20 @@ def _bump(r: np.ndarray, xi: float) -> np.ndarray:
 
 
 @functools.lru_cache(maxsize=32)
-def wavelet_bank(shape: tuple[int, int], J: int, L: int, full_angle: bool = False) -> WaveletBank:
+def wavelet_bank(
+    shape: tuple[int, int], n_scales: int, n_orientations: int, full_angle: bool = False
+) -> WaveletBank:
     """Build (or fetch from the cache) the bank for a map shape.
 
     Parameters
     ----------
     shape : (int, int)
         Map shape ``(ny, nx)`` in pixels.
-    J : int
-        Dyadic scales ``j = 0 .. J-1``; needs ``2^J <= min(ny, nx)``.
-    L : int
-        Orientations ``theta_l = l pi / L`` over ``[0, pi)``, 2 <= L <= 16.
+    n_scales : int
+        Dyadic scales ``j = 0 .. J-1`` (J = n_scales); needs ``2^J <= min(ny, nx)``.
+    n_orientations : int
+        Orientations ``theta_l = l pi / L`` over ``[0, pi)`` (L = n_orientations),
+        2 <= L <= 16.
     full_angle : bool
         Use ``2 L`` orientations over ``[0, 2 pi)``.
 
@@ -150,7 +157,8 @@ def wavelet_bank(shape: tuple[int, int], J: int, L: int, full_angle: bool = Fals
     WaveletBank
     """
     shape = (int(shape[0]), int(shape[1]))
-    check_bank_args(shape, J, L)
+    check_bank_args(shape, n_scales, n_orientations)
+    J, L = int(n_scales), int(n_orientations)
     ny, nx = shape
     n_theta = 2 * L if full_angle else L
     thetas = np.arange(n_theta) * np.pi / L

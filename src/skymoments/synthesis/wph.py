@@ -12,31 +12,51 @@ Sec. 3),
 
     M(tau) = < conj([x_a * psi_1]^k1(u) - mean) ([x_b * psi_2]^k2(u + tau) - mean) >_u,
 
-for channels ``a, b`` (Q and U, or E and B). The families (index sets following Allys et
-al. 2020, Sec. 3.2, and Regaldo-Saint Blancard et al., arXiv:2102.03160, Sec. 3) are
+for channels ``a, b`` (Q and U, or E and B). The families and the index sets are named
+for what they measure; the table maps each name to the symbol of Allys et al. 2020
+(Phys. Rev. D 102, 103506, arXiv:2006.06298, Sec. 3.2) and Regaldo-Saint Blancard et al.
+(arXiv:2102.03160, Sec. 3; arXiv:2208.03538, Sec. 2):
 
-* ``S11``: k1 = k2 = 1, same wavelet: the power spectrum at the wavelet's resolution,
-  with shifts ``tau`` (below) for finer spectral detail;
-* ``S00``: k1 = k2 = 0, same wavelet: correlations of the envelopes (sparsity);
-* ``S01``: k1 = 0, k2 = 1, same wavelet: envelope-coefficient correlation;
-* ``C01``: k1 = 0 at ``j1``, k2 = 1 at ``j1 < j2 <= j1 + delta_j``, orientations within
-  ``delta_l`` steps, tau = 0;
-* ``Cphase``: k1 = 1 at ``j1``, k2 = 2^(j2 - j1) at ``j2 = j1 + 1 .. j1 + delta_j``, same
-  orientation, tau = 0: the phase alignment across scales;
-* ``L``: scaling-function moments: the channel means, the covariance of the
-  low-passed maps, and (our addition) the one-point moments ``<|y - mean|^p>``, p = 1, 3,
-  of each channel and of ``|P|``, which pin the pixel histogram's width and tails;
-* ``P`` (our addition, off with ``spectrum_bins=0``): the power in ``n // 4`` linear
-  annuli of ``|w|`` (the project's default spectrum bins, ``FlatPatch.default_bin_edges``)
-  of E, B and E x B for two channels (of the map for one). ``S11`` pins the spectrum
-  only at the wavelets' dyadic resolution (plus shifts); a per-bin spectrum within a few
-  percent needs these finer second-order moments. E/B follow ``maps/eb.py``'s convention.
+==================== ============ =====================================================
+name                 paper symbol what it is
+==================== ============ =====================================================
+``wave_power``       S^(1,1)      k1 = k2 = 1, same wavelet: the power spectrum at the
+                                  wavelet's resolution, with shifts ``tau`` (below)
+``envelope``         S^(0,0)      k1 = k2 = 0, same wavelet: correlations of the
+                                  envelopes ``|W|`` (sparsity)
+``envelope_wave``    S^(0,1)      k1 = 0, k2 = 1, same wavelet: envelope-coefficient
+                                  correlation
+``xscale_envelope``  C^(0,1)      k1 = 0 at ``j1``, k2 = 1 at ``j1 < j2 <= j1 +
+                                  scale_reach``, orientations within
+                                  ``orientation_reach`` steps, tau = 0
+``xscale_phase``     C^phase      k1 = 1 at ``j1``, k2 = 2^(j2 - j1) at ``j2 = j1 + 1 ..
+                                  j1 + scale_reach``, same orientation, tau = 0: the
+                                  phase alignment across scales
+``lowpass``          L            scaling-function moments: the channel means, the
+                                  covariance of the low-passed maps, and (our addition)
+                                  the one-point moments ``<|y - mean|^p>``, p = 1, 3, of
+                                  each channel and of ``|P|`` (the histogram's width and
+                                  tails)
+``spectrum``         (none)       our addition (off with ``spectrum_bins=0``): the power
+                                  in ``n // 4`` linear annuli of ``|w|`` of E, B and
+                                  E x B for two channels (of the map for one)
+``n_scales``         J            dyadic scales ``j = 0 .. J - 1``
+``n_orientations``   L            orientations over ``[0, pi)``
+``shift_reach``      Delta_n      largest ``|v|`` of the shifts ``tau = 2^j v``
+``scale_reach``      Delta_j      largest ``j2 - j1`` of the cross-scale families
+``orientation_reach`` Delta_l     largest orientation offset of ``xscale_envelope``
+==================== ============ =====================================================
+
+``wave_power`` pins the spectrum only at the wavelets' dyadic resolution (plus shifts); a
+per-bin spectrum within a few percent needs the finer second-order ``spectrum`` moments
+(annuli as the project's default spectrum bins, ``FlatPatch.default_bin_edges``; E/B as in
+``maps/eb.py``).
 
 For two channels every family is computed for all channel pairs (Q-Q, U-U, Q-U and, for the
 non-symmetric families, U-Q), which keeps the QQ, UU and QU power, hence EE, BB and EB, and
 the dependence between Q and U.
 
-Shifts. ``tau = 2^j v`` for integer vectors ``|v| <= delta_n`` (the shift grows with the
+Shifts. ``tau = 2^j v`` for integer vectors ``|v| <= shift_reach`` (the shift grows with the
 wavelet's size, as in arXiv:2006.06298, Sec. 3.2), dropping those that reach half the map.
 For an auto-covariance ``M(-tau) = conj(M(tau))``, so only a half plane of ``v`` is used
 there; cross-covariances take the full disk.
@@ -49,7 +69,7 @@ family dominates the loss.
 
 Computation. Moments with shifts are evaluated in Fourier space: with ``A_hat = fft2(A)``,
 ``M(tau) = N^-2 sum_w conj(A_hat(w)) B_hat(w) exp(i w.tau)`` (Parseval), a matrix product
-with a small table of phases. ``S11`` needs no FFT beyond ``x_hat`` since
+with a small table of phases. ``wave_power`` needs no FFT beyond ``x_hat`` since
 ``conj(W_a_hat) W_b_hat = conj(x_a_hat) x_b_hat psi_hat^2``. The tau = 0 families are means
 of products in pixel space. The work is done scale by scale, so no stack of phase
 harmonics for all pairs is ever materialized; :class:`WPHStatistics` works on any batch,
@@ -58,8 +78,8 @@ and the synthesis calls it on chunks of a few images.
 Symmetries (tested): the moments are exactly invariant under whole-pixel translations of
 a periodic map. Under a 180-degree rotation ``x(u) -> x(-u)``, ``W(u) -> conj(W(-u))``
 (``psi_hat`` is real), so ``M(tau) -> conj(M(-tau))``: auto-covariances over the half
-plane (``S11``, ``S00`` for a = b) are invariant, the others map to the complex conjugate
-at the opposite shift (see :meth:`WPHStatistics.rotate180`).
+plane (``wave_power``, ``envelope`` for a = b) are invariant, the others map to the complex
+conjugate at the opposite shift (see :meth:`WPHStatistics.rotate180`).
 """
 
 from __future__ import annotations
@@ -71,7 +91,26 @@ import torch
 
 from skymoments.synthesis.wavelets import WaveletBank, check_bank_args, wavelet_bank
 
-FAMILIES = ("S11", "S00", "S01", "C01", "Cphase", "L", "P")
+FAMILIES = (
+    "wave_power",
+    "envelope",
+    "envelope_wave",
+    "xscale_envelope",
+    "xscale_phase",
+    "lowpass",
+    "spectrum",
+)
+# The families' former labels (the papers' letters), read from banks written before the
+# descriptive names (synthesis/bank.py).
+LEGACY_FAMILIES = {
+    "S11": "wave_power",
+    "S00": "envelope",
+    "S01": "envelope_wave",
+    "C01": "xscale_envelope",
+    "Cphase": "xscale_phase",
+    "L": "lowpass",
+    "P": "spectrum",
+}
 # |z| below this (relative to the map's unit) has no meaningful phase; the phase harmonic
 # of order k >= 2 is evaluated with |z| clamped there (its value there is ~0 anyway).
 _TINY = 1e-30
@@ -79,60 +118,70 @@ _TINY = 1e-30
 
 @dataclass(frozen=True)
 class WPHConfig:
-    """Index sets of the WPH statistics.
+    """Index sets of the WPH statistics (paper symbols in the module docstring's table).
 
     Parameters
     ----------
-    J : int
-        Dyadic scales (``2^J <= npix``).
-    L : int
-        Orientations over ``[0, pi)`` (2..16).
-    delta_j : int
-        Largest scale separation in ``C01`` and ``Cphase`` (>= 0; 0 disables them).
-    delta_l : int
-        Largest orientation offset, in steps of ``pi / L``, in ``C01`` (0 <= delta_l < L).
-    delta_n : int
-        Largest shift vector length ``|v|`` for ``S11``, ``S00``, ``S01`` (>= 0).
+    n_scales : int
+        Dyadic scales ``j = 0 .. n_scales - 1`` (``2^n_scales <= npix``); the papers' J.
+    n_orientations : int
+        Orientations over ``[0, pi)`` (2..16); the papers' L.
+    scale_reach : int
+        Largest scale separation ``j2 - j1`` in ``xscale_envelope`` and ``xscale_phase``
+        (>= 0; 0 disables them); the papers' Delta_j.
+    orientation_reach : int
+        Largest orientation offset, in steps of ``pi / n_orientations``, in
+        ``xscale_envelope`` (0 <= orientation_reach < n_orientations); the papers' Delta_l.
+    shift_reach : int
+        Largest shift vector length ``|v|`` for ``wave_power``, ``envelope`` and
+        ``envelope_wave`` (>= 0); the papers' Delta_n.
     full_angle : bool
         Orientations over ``[0, 2 pi)`` instead of ``[0, pi)``.
     spectrum_bins : int or None
-        Annuli of the ``P`` family; None means ``npix // 4``, 0 turns the family off.
+        Annuli of the ``spectrum`` family; None means ``npix // 4``, 0 turns the family off.
     """
 
-    J: int = 4
-    L: int = 8
-    delta_j: int = 2
-    delta_l: int = 1
-    delta_n: int = 1
+    n_scales: int = 4
+    n_orientations: int = 8
+    scale_reach: int = 2
+    orientation_reach: int = 1
+    shift_reach: int = 1
     full_angle: bool = False
     spectrum_bins: int | None = None
 
     def validate(self, shape: tuple[int, int]) -> None:
-        check_bank_args(shape, self.J, self.L)
-        for name in ("delta_j", "delta_l", "delta_n"):
+        check_bank_args(shape, self.n_scales, self.n_orientations)
+        for name in ("scale_reach", "orientation_reach", "shift_reach"):
             v = getattr(self, name)
             if not isinstance(v, int | np.integer) or v < 0:
                 raise ValueError(f"{name} must be a non-negative integer, got {v!r}")
-        if self.delta_j >= self.J and self.J > 1:
-            raise ValueError(f"delta_j = {self.delta_j} must be below J = {self.J}")
-        if self.delta_l >= self.L:
-            raise ValueError(f"delta_l = {self.delta_l} must be below L = {self.L}")
+        if self.scale_reach >= self.n_scales and self.n_scales > 1:
+            raise ValueError(
+                f"scale_reach = {self.scale_reach} must be below n_scales = {self.n_scales}"
+            )
+        if self.orientation_reach >= self.n_orientations:
+            raise ValueError(
+                f"orientation_reach = {self.orientation_reach} must be below "
+                f"n_orientations = {self.n_orientations}"
+            )
         if self.spectrum_bins is not None and (
             not isinstance(self.spectrum_bins, int | np.integer) or self.spectrum_bins < 0
         ):
             raise ValueError(
                 f"spectrum_bins must be None or an integer >= 0, got {self.spectrum_bins!r}"
             )
-        if self.delta_n > 4:
-            raise ValueError(f"delta_n = {self.delta_n} is too large; use 0..4 (shifts 2^j v)")
+        if self.shift_reach > 4:
+            raise ValueError(
+                f"shift_reach = {self.shift_reach} is too large; use 0..4 (shifts 2^j v)"
+            )
 
 
-def _shift_vectors(delta_n: int, half: bool) -> np.ndarray:
-    """Integer vectors ``(vy, vx)`` with ``|v| <= delta_n``, zero first; a half plane if asked."""
+def _shift_vectors(shift_reach: int, half: bool) -> np.ndarray:
+    """Integer vectors ``(vy, vx)``, ``|v| <= shift_reach``, zero first; a half plane if asked."""
     out = [(0, 0)]
-    for vy in range(-delta_n, delta_n + 1):
-        for vx in range(-delta_n, delta_n + 1):
-            if (vy, vx) == (0, 0) or vy * vy + vx * vx > delta_n * delta_n:
+    for vy in range(-shift_reach, shift_reach + 1):
+        for vx in range(-shift_reach, shift_reach + 1):
+            if (vy, vx) == (0, 0) or vy * vy + vx * vx > shift_reach * shift_reach:
                 continue
             if half and not (vy > 0 or (vy == 0 and vx > 0)):
                 continue
@@ -173,7 +222,9 @@ class WPHStatistics:
         self.shape, self.config, self.channels = shape, config, channels
         self.device, self.dtype = device, dtype
         self.cdtype = torch.complex128 if dtype == torch.float64 else torch.complex64
-        self.bank: WaveletBank = wavelet_bank(shape, config.J, config.L, config.full_angle)
+        self.bank: WaveletBank = wavelet_bank(
+            shape, config.n_scales, config.n_orientations, config.full_angle
+        )
         psi, phi = self.bank.torch_filters(device, dtype)
         self.psi, self.phi = psi, phi  # (J, T, ny, nx), (ny, nx)
         self.n_theta = self.bank.n_theta
@@ -183,7 +234,7 @@ class WPHStatistics:
         self.sym_pairs = [(a, b) for a in range(c) for b in range(a, c)]
         self.all_pairs = [(a, b) for a in range(c) for b in range(c)]
         self._build_shift_tables()
-        self.norm0 = torch.ones(c, config.J, self.n_theta, dtype=dtype, device=device)
+        self.norm0 = torch.ones(c, config.n_scales, self.n_theta, dtype=dtype, device=device)
         self.norm1 = torch.ones_like(self.norm0)
         self.norm_low = torch.ones(c, dtype=dtype, device=device)
         self.norm_mean = torch.ones(c, dtype=dtype, device=device)
@@ -206,12 +257,12 @@ class WPHStatistics:
         self.s11_kernel_full: list[torch.Tensor] = []
         self.neg_full: list[np.ndarray] = []  # index of -tau in the full list
         lim = min(ny, nx) // 2
-        for j in range(self.config.J):
+        for j in range(self.config.n_scales):
             for half, shifts, phases, kern in (
                 (True, self.shifts_half, self.phase_half, self.s11_kernel_half),
                 (False, self.shifts_full, self.phase_full, self.s11_kernel_full),
             ):
-                tau = _shift_vectors(self.config.delta_n, half) * 2**j
+                tau = _shift_vectors(self.config.shift_reach, half) * 2**j
                 tau = tau[np.abs(tau).max(axis=1) < lim]
                 shifts.append(tau)
                 tt = torch.as_tensor(tau, dtype=torch.float64)
@@ -227,7 +278,7 @@ class WPHStatistics:
                     self.neg_full.append(np.array([index[(-a, -b)] for a, b in tau.tolist()]))
         self.s11_kernel_half_all = torch.cat(self.s11_kernel_half, dim=1)
         self.s11_kernel_full_all = torch.cat(self.s11_kernel_full, dim=1)
-        # P family: annulus indicator matrix (N, n_bins) divided by the mode count, and
+        # spectrum family: annulus indicator matrix (N, n_bins) divided by the mode count, and
         # the E/B rotation cos 2phi, sin 2phi of maps/eb.py (phi = atan2(w_y, w_x)).
         nb = self.config.spectrum_bins
         nb = min(ny, nx) // 4 if nb is None else nb
@@ -345,7 +396,7 @@ class WPHStatistics:
         tags: dict[str, list] = {f: [] for f in FAMILIES}
         n0, n1 = self.norm0, self.norm1  # (C, J, T)
         xflat = xf.reshape(b, c, n)
-        # S11 for all scales at once from the cross-spectra of x:
+        # wave_power for all scales at once from the cross-spectra of x:
         # conj(W_a_hat) W_b_hat = conj(x_a_hat) x_b_hat psi_hat^2.
         auto = (xflat.real**2 + xflat.imag**2).to(self.cdtype)  # (b, C, N)
         s_auto = auto @ self.s11_kernel_half_all  # (b, C, sum_j T n_tau_j)
@@ -355,50 +406,50 @@ class WPHStatistics:
         # Phase-harmonic maps of order 0, mean removed (only their covariances enter).
         mod = w.abs()
         mod0 = mod - mod.mean(dim=(-2, -1), keepdim=True)
-        m0f = torch.fft.fft2(mod0).reshape(b, c, cfg.J, nt, n)
-        wflat = wf.reshape(b, c, cfg.J, nt, n)
+        m0f = torch.fft.fft2(mod0).reshape(b, c, cfg.n_scales, nt, n)
+        wflat = wf.reshape(b, c, cfg.n_scales, nt, n)
         oh, of = 0, 0
-        for j in range(cfg.J):
+        for j in range(cfg.n_scales):
             th, tf = len(self.shifts_half[j]), len(self.shifts_full[j])
             blk = s_auto[..., oh : oh + nt * th].reshape(b, c, nt, th)
-            out["S11"].append(blk / (n1[:, j] ** 2)[None, :, :, None])
-            tags["S11"].append("inv")
+            out["wave_power"].append(blk / (n1[:, j] ** 2)[None, :, :, None])
+            tags["wave_power"].append("inv")
             if s_cross is not None:
                 blk = s_cross[..., of : of + nt * tf].reshape(b, 1, nt, tf)
-                out["S11"].append(blk / (n1[0, j] * n1[1, j])[None, None, :, None])
-                tags["S11"].append(("neg", j))
+                out["wave_power"].append(blk / (n1[0, j] * n1[1, j])[None, None, :, None])
+                tags["wave_power"].append(("neg", j))
             oh, of = oh + nt * th, of + nt * tf
             mj = m0f[:, :, j]  # (b, C, T, N)
             p = (mj.real**2 + mj.imag**2).to(self.cdtype)
             blk = p @ self.phase_half[j]
-            out["S00"].append(blk / (n0[:, j] ** 2)[None, :, :, None])
-            tags["S00"].append("inv")
+            out["envelope"].append(blk / (n0[:, j] ** 2)[None, :, :, None])
+            tags["envelope"].append("inv")
             if c == 2:
                 blk = (torch.conj(mj[:, :1]) * mj[:, 1:]) @ self.phase_full[j]
-                out["S00"].append(blk / (n0[0, j] * n0[1, j])[None, None, :, None])
-                tags["S00"].append(("neg", j))
+                out["envelope"].append(blk / (n0[0, j] * n0[1, j])[None, None, :, None])
+                tags["envelope"].append(("neg", j))
             # S01 for every ordered channel pair (a, b): conj(|W_a| hat) W_b hat.
             prod = torch.conj(mj)[:, :, None] * wflat[:, None, :, j]  # (b, C, C, T, N)
             blk = prod @ self.phase_full[j]
             norm = n0[:, None, j] * n1[None, :, j]  # (C, C, T)
-            out["S01"].append(blk / norm[None, :, :, :, None])
-            tags["S01"].append(("neg", j))
+            out["envelope_wave"].append(blk / norm[None, :, :, :, None])
+            tags["envelope_wave"].append(("neg", j))
         # Cross-scale families at tau = 0, one scale offset at a time, as matrix products
         # over pixels of all (channel, orientation) pairs at once (cheaper on a CPU than
         # gathering the few pairs we keep one by one).
-        shp = (b, c, cfg.J, nt, n)
-        modr = mod0.reshape(shp).permute(0, 2, 1, 3, 4).reshape(b, cfg.J, c * nt, n)
-        wr = w.reshape(shp).permute(0, 2, 1, 3, 4).reshape(b, cfg.J, c * nt, n)
+        shp = (b, c, cfg.n_scales, nt, n)
+        modr = mod0.reshape(shp).permute(0, 2, 1, 3, 4).reshape(b, cfg.n_scales, c * nt, n)
+        wr = w.reshape(shp).permute(0, 2, 1, 3, 4).reshape(b, cfg.n_scales, c * nt, n)
         tt = np.arange(nt)
-        for dj in range(1, cfg.delta_j + 1):
-            if dj >= cfg.J:
+        for dj in range(1, cfg.scale_reach + 1):
+            if dj >= cfg.n_scales:
                 break
-            jn = cfg.J - dj
+            jn = cfg.n_scales - dj
             # C01: <(|W_j1| - mean) W_j2> for all (a, t1) x (b, t2).
             w2 = wr[:, dj:]
             full_re = (modr[:, :jn] @ w2.real.transpose(-1, -2)).reshape(b, jn, c, nt, c, nt)
             full_im = (modr[:, :jn] @ w2.imag.transpose(-1, -2)).reshape(b, jn, c, nt, c, nt)
-            for dl in range(-cfg.delta_l, cfg.delta_l + 1):
+            for dl in range(-cfg.orientation_reach, cfg.orientation_reach + 1):
                 t2 = (tt + dl) % nt
                 re = full_re[:, :, :, tt, :, t2]  # (T, b, jn, C, C)
                 im = full_im[:, :, :, tt, :, t2]
@@ -408,9 +459,9 @@ class WPHStatistics:
                     im = torch.where(wrapped[:, None, None, None, None], -im, im)
                 m = torch.complex(re, im).permute(1, 3, 4, 2, 0) / n  # (b, C, C, jn, T)
                 norm = n0[:, None, :jn, :] * n1[None, :, dj:, :][..., t2]
-                out["C01"].append(m / norm)
-                tags["C01"].append("conj")
-            # Cphase: [W_j2]^(2^dj) has the frequency of W_j1 (arXiv:1810.12136, Sec. 4);
+                out["xscale_envelope"].append(m / norm)
+                tags["xscale_envelope"].append("conj")
+            # xscale_phase: [W_j2]^(2^dj) has the frequency of W_j1 (arXiv:1810.12136, Sec. 4);
             # the phase is raised to 2^dj by repeated squaring (complex pow is slow).
             w2 = w[:, :, dj:]
             r = w2.abs().clamp_min(_TINY)
@@ -421,18 +472,18 @@ class WPHStatistics:
             w1 = w[:, :, :jn].reshape(b, c, jn, nt, n)
             m = torch.einsum("bajtn,bcjtn->bacjt", torch.conj(w1), harm) / n
             norm = n1[:, None, :jn] * n1[None, :, dj:]
-            out["Cphase"].append(m / norm)
-            tags["Cphase"].append("conj")
+            out["xscale_phase"].append(m / norm)
+            tags["xscale_phase"].append("conj")
         # Scaling-function moments: channel means and low-pass covariances.
         mean = x.mean(dim=(-2, -1))
-        out["L"].append((mean / self.norm_mean).to(self.cdtype))
+        out["lowpass"].append((mean / self.norm_mean).to(self.cdtype))
         low = torch.fft.ifft2(xf * self.phi).real
         low = low - low.mean(dim=(-2, -1), keepdim=True)
         sa = [p[0] for p in self.sym_pairs]
         sb = [p[1] for p in self.sym_pairs]
         cov = (low[:, sa] * low[:, sb]).mean(dim=(-2, -1))
-        out["L"].append((cov / (self.norm_low[sa] * self.norm_low[sb])).to(self.cdtype))
-        tags["L"] += ["inv", "inv"]
+        out["lowpass"].append((cov / (self.norm_low[sa] * self.norm_low[sb])).to(self.cdtype))
+        tags["lowpass"] += ["inv", "inv"]
         # One-point moments <|y - mean|^p>, p = 1, 3, of each channel and of |P| (two
         # channels): the pixel histogram's width and tails, which the wavelet moments
         # constrain only indirectly (our addition, a j = 0 scaling moment with phi = delta).
@@ -442,21 +493,21 @@ class WPHStatistics:
         ys = torch.stack(ys, dim=1)
         dev = (ys - ys.mean(dim=(-2, -1), keepdim=True)).abs()
         onep = torch.stack([dev.mean(dim=(-2, -1)), dev.pow(3).mean(dim=(-2, -1))], dim=-1)
-        out["L"].append((onep / self.norm_onepoint).to(self.cdtype))
-        tags["L"].append("inv")
+        out["lowpass"].append((onep / self.norm_onepoint).to(self.cdtype))
+        tags["lowpass"].append("inv")
         if self.n_spectrum_bins:
             spec = self._spectrum(xflat)
             if self.norm_spec is not None:
                 spec = spec / self.norm_spec
-            out["P"].append(spec.to(self.cdtype))
-            tags["P"].append("inv")
+            out["spectrum"].append(spec.to(self.cdtype))
+            tags["spectrum"].append("inv")
         self._tags = tags
         return out
 
     # ------------------------------------------------------------------ helpers
     def flatten(self, stats: dict[str, list[torch.Tensor]]) -> torch.Tensor:
         """All moments of :meth:`forward` as one complex tensor, shape (b, n_moments)."""
-        b = stats["L"][0].shape[0]
+        b = stats["lowpass"][0].shape[0]
         return torch.cat([t.reshape(b, -1) for f in FAMILIES for t in stats[f]], dim=1)
 
     def moments(self, x) -> torch.Tensor:
