@@ -21,7 +21,7 @@ from omegaconf import DictConfig, OmegaConf
 
 from skymoments.moments.data import MomentsDataModule, stream_generator
 from skymoments.moments.distributed import with_job_ddp
-from skymoments.moments.perf import DataWaitTimer
+from skymoments.moments.perf import DataWaitTimer, network_step, resolve_parallelism
 from skymoments.moments.stages import MeanModule, VarianceModule
 from skymoments.nets import ChannelScaler, PosteriorMoments, build_network
 from skymoments.sky.seeds import torch_seed
@@ -205,15 +205,6 @@ def train_moments(
     tr = cfg.train
     t_start = time.perf_counter()
 
-    threads = tr.get("torch_threads")
-    if threads is not None:
-        if isinstance(threads, bool) or not isinstance(threads, int) or threads < 1:
-            raise ValueError(
-                f"train.torch_threads must be a positive integer or null, got {threads!r}"
-            )
-        # Process-wide: on a small shared CPU, fewer intra-op threads than cores avoids
-        # oversubscription (see experiments/data_pipeline/README.md).
-        torch.set_num_threads(threads)
     input_scaler, target_scaler = fit_scalers(train_scenario, int(tr.fit_scalers_n), seed)
     torch.manual_seed(torch_seed(seed, "init"))
     mean_net = build_network(cfg.model.mean, key="model.mean")
@@ -221,6 +212,18 @@ def train_moments(
     positivity = str(cfg.model.get("positivity", "softplus"))
     eps = float(cfg.model.get("eps", 1e-6))
     model = PosteriorMoments(mean_net, var_net, input_scaler, target_scaler, positivity, eps)
+
+    # Threads and workers: as configured, or measured on this machine when `auto` (a
+    # draw of its own stream, so no training or scaler draw changes).
+    def probe():
+        return train_scenario.draw(stream_generator(seed, "parallelism"), int(tr.batch_size))
+
+    x0 = input_scaler(torch.as_tensor(np.asarray(probe().data_qu), dtype=torch.float32))
+    parallel = resolve_parallelism(tr, probe, network_step(mean_net, x0))
+    if parallel["threads"] is not None:
+        # Process-wide: on a small shared CPU, fewer intra-op threads than cores avoids
+        # oversubscription (see experiments/data_pipeline/README.md).
+        torch.set_num_threads(parallel["threads"])
 
     optimizer = instantiate(tr.optimizer)
     scheduler = instantiate(tr.scheduler) if tr.get("scheduler") is not None else None
@@ -231,7 +234,7 @@ def train_moments(
         steps_per_epoch=int(tr.steps_per_epoch),
         n_val=int(tr.n_val),
         seed=seed,
-        num_workers=int(tr.get("num_workers", 0)),
+        num_workers=parallel["workers"],
         val_batch_size=tr.get("val_batch_size"),
         stage="mean",
     )
@@ -272,6 +275,8 @@ def train_moments(
         perf[f"perf/data_draw_share_{name}"] = st["timer"].data_share
         perf[f"perf/train_s_{name}"] = st["wall"]
         perf[f"perf/epochs_{name}"] = float(st["epochs"])
+        perf[f"perf/step_over_fwd_bwd_{name}"] = st["timer"].step_over_floor
+        perf[f"perf/maps_seen_{name}"] = float(st["timer"].samples)
     timers = (s1["timer"], s2["timer"])
     wait = sum(t.wait_s for t in timers)
     steady = sum(t.wait_s + t.step_s for t in timers)
@@ -279,6 +284,11 @@ def train_moments(
     perf["perf/train_samples_per_s"] = sum(t.samples for t in timers) / total
     perf["perf/data_draw_share"] = wait / steady if steady > 0 else float("nan")
     perf["perf/train_moments_s"] = time.perf_counter() - t_start
+    # What the run used: torch threads (0: torch's default), DataLoader workers, and
+    # whether they were measured (train.*=auto: 1) or configured (0).
+    perf["perf/torch_threads"] = float(parallel["threads"] or 0)
+    perf["perf/num_workers"] = float(parallel["workers"])
+    perf["perf/parallelism_measured"] = float(parallel["chosen"] == "measured")
     return MomentsResult(
         model=model,
         val_data_qu=np.asarray(val.data_qu),
