@@ -15,7 +15,7 @@ from __future__ import annotations
 from omegaconf import DictConfig
 
 from skymoments.commands._entry import hydra_task
-from skymoments.config import validate
+from skymoments.config import ConfigError, validate
 
 
 @hydra_task
@@ -23,10 +23,17 @@ def main(cfg: DictConfig) -> None:
     """Hydra task of ``skymoments synthesize``."""
     from rich.console import Console
 
+    from skymoments.sky.training_image import training_image
     from skymoments.synthesis.pipeline import flat_settings, log_bank, progress_bar, run_synthesis
     from skymoments.tracking import tracked_run
 
     validate(cfg, command="synthesis")
+    # Read and check the training image before a run exists: a bad file is one line
+    # (exit 2) and leaves no FAILED run behind.
+    try:
+        training_image(cfg)
+    except ValueError as err:
+        raise ConfigError(str(err)) from err
     console = Console(stderr=True)
     with tracked_run(cfg, run_name="synthesize") as run:
         run.log_config(cfg)
