@@ -111,7 +111,7 @@ def _cls(lmax=200):
 
 
 def test_healpix_prediction_covers_the_region(logged, tmp_path):
-    from skymoments.maps.fits_io import read_healpix_map, write_healpix_map
+    from skymoments.maps.fits_io import write_healpix_map
     from skymoments.maps.healpix import UNSEEN, cut_patch, patch_to_healpix, synfast_tqu
 
     nside, nside_out = 64, 256
@@ -132,10 +132,12 @@ def test_healpix_prediction_covers_the_region(logged, tmp_path):
     res = pipeline.run_prediction(cfg)
     patch = FlatPatch(NPIX, PIXEL)
 
-    # The patches are cut_patch's at the model's geometry (same function, same inputs) and
-    # the posterior is the model's on them.
+    # The patches are those of the reference cut (maps.healpix.cut_patch, tested against
+    # healpy) at the model's geometry, to the reference's own accuracy (its degree-7 spline
+    # between rings, ~1e-5 of the rms), and the posterior is the model's on them.
     for k, (lon, lat) in enumerate(centres):
-        np.testing.assert_array_equal(res.data_qu[k], cut_patch(tqu[1:], lon, lat, patch))
+        ref = cut_patch(tqu[1:], lon, lat, patch)
+        np.testing.assert_allclose(res.data_qu[k], ref, rtol=0, atol=1e-4 * ref.std())
     mean, std = direct(logged["model"], res.data_qu)
     np.testing.assert_allclose(res.mean_eb, mean, rtol=1e-6, atol=1e-6 * np.abs(mean).max())
 
@@ -146,12 +148,14 @@ def test_healpix_prediction_covers_the_region(logged, tmp_path):
         "posterior.png",
         "posterior_healpix.fits",
     ]
-    maps = read_healpix_map(
-        out / "posterior_healpix.fits", fields=("MEAN_E", "MEAN_B", "STD_E", "STD_B")
-    )
-    seen = maps[0] != UNSEEN
+    # A partial-sky table read back by healpy itself (float32 columns).
+    maps = hp.read_map(out / "posterior_healpix.fits", field=(0, 1, 2, 3), partial=True)
+    assert maps.dtype == np.float32
+    bad = hp.mask_bad(maps)  # UNSEEN in float32 is not exactly float64's UNSEEN
+    assert np.all(bad == bad[0])  # every column covers the same pixels
+    seen = ~bad[0]
+    maps = np.where(seen, maps.astype(np.float64), UNSEEN)
     assert np.all(np.isfinite(maps[:, seen])) and np.all(maps[2:, seen] > 0)
-    assert np.all(maps[:, ~seen] == UNSEEN)
     # Coverage = union of the single patches' back-projections (patch_to_healpix).
     single = [
         patch_to_healpix(
@@ -179,22 +183,23 @@ def test_healpix_prediction_covers_the_region(logged, tmp_path):
     expected = 4.0 * np.arcsin(a**2 / (1.0 + a**2)) / hp.nside2pixarea(nside_out)
     straddling = 8.0 * a / hp.nside2resol(nside_out)
     assert abs(cover[0].sum() - expected) <= straddling
-    # write_healpix_map stores float64, so the overlap averages compare to float64
-    # round-off: mean maps averaged, std maps as the root of the averaged variances.
+    # Overlaps: inverse-variance weighted mean, and the root of the harmonic mean of the
+    # variances (outputs.project_to_healpix), written as float32 (relative 6e-8 round-off).
     both = cover[0] & cover[1]
     assert both.sum() > 0.3 * cover[0].sum()
-    np.testing.assert_allclose(
-        maps[0, both], 0.5 * (single[0][0, both] + single[1][0, both]), rtol=1e-12, atol=1e-12
-    )
-    np.testing.assert_allclose(
-        maps[2, both], np.sqrt(0.5 * (single[0][1, both] + single[1][1, both])), rtol=1e-12
-    )
+    w0, w1 = 1.0 / single[0][1, both], 1.0 / single[1][1, both]
+    want = (w0 * single[0][0, both] + w1 * single[1][0, both]) / (w0 + w1)
+    scale = np.abs(want).max()
+    np.testing.assert_allclose(maps[0, both], want, rtol=1e-6, atol=1e-6 * scale)
+    np.testing.assert_allclose(maps[2, both], np.sqrt(2.0 / (w0 + w1)), rtol=1e-6)
     only0 = cover[0] & ~cover[1]
-    np.testing.assert_allclose(maps[0, only0], single[0][0, only0], rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(maps[0, only0], single[0][0, only0], rtol=1e-6, atol=1e-6 * scale)
 
     with fits.open(out / "posterior_healpix.fits") as hdul:
         head = hdul[1].header
-        assert head["TUNIT1"] == "uK" and head["MODELURI"] == f"models:/{NAME}/1"
+        assert head["TTYPE1"] == "PIXEL" and head["INDXSCHM"] == "EXPLICIT"
+        assert head["TTYPE2"] == "MEAN_E" and head["TUNIT2"] == "uK" and head["TFORM2"] == "E"
+        assert "POLCCONV" not in head and head["MODELURI"] == f"models:/{NAME}/1"
         assert (
             head["INSHA256"] == res.input.sha256
             and head["NSIDE"] == nside_out

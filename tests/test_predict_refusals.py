@@ -20,6 +20,7 @@ from omegaconf import OmegaConf
 
 from _predict_fakes import NPIX, PIXEL, make_qu
 from _predict_fakes import tiny_model as _tiny
+from skymoments.maps import FlatPatch
 from skymoments.nets import PosteriorMoments
 from skymoments.predict import pipeline
 from skymoments.tracking import tracked_run
@@ -347,7 +348,7 @@ def test_command_prints_the_refusal_and_exits_2(store, tmp_path, no_compute, cap
         "tracking.experiment=training",
     ]
     with initialize_config_dir(config_dir=str(CONF), version_base="1.3"):
-        cfg = compose("config", overrides=overrides)
+        cfg = compose("predict", overrides=overrides)
     with pytest.raises(SystemExit) as exit_info:
         main.task(cfg)
     assert exit_info.value.code == 2
@@ -431,7 +432,7 @@ def test_damaged_or_impossible_inputs_exit_2_in_one_line(store, tmp_path, no_com
     else:
         overrides.append(f"predict.pixel_arcmin={PIXEL}")
     with initialize_config_dir(config_dir=str(CONF), version_base="1.3"):
-        cfg = compose("config", overrides=overrides)
+        cfg = compose("predict", overrides=overrides)
     with pytest.raises(SystemExit) as exit_info:
         main.task(cfg)
     assert exit_info.value.code == 2
@@ -446,3 +447,112 @@ def test_damaged_or_impossible_inputs_exit_2_in_one_line(store, tmp_path, no_com
     with contextlib.closing(sqlite3.connect(f"file:{db}?mode=ro", uri=True)) as con:
         assert con.execute("PRAGMA integrity_check").fetchall() == [("ok",)]
     assert not (tmp_path / "out").exists()
+
+
+# --- the sphere: resolution, regions, tiling, what the user sees -------------------------
+
+
+def _sky_file(path, nside=64, convention="COSMO"):
+    from skymoments.maps.fits_io import write_healpix_map
+    from skymoments.maps.healpix import synfast_tqu
+
+    ell = np.arange(3 * nside)
+    ee = np.where(ell >= 2, 50.0 / (ell + 10.0) ** 2, 0.0)
+    tqu = synfast_tqu({"TT": 4 * ee, "EE": ee, "BB": 0.3 * ee, "TE": 0 * ee}, nside, seed=4)
+    return write_healpix_map(path, tqu, ("T", "Q", "U"), convention=convention)
+
+
+def test_a_map_too_coarse_for_the_model_is_refused_with_the_ratio(store, tmp_path, no_compute):
+    # nside 16 pixels are sqrt(4 pi / 3072) rad = 220 arcmin (healpy nside2resol), 3.7 times
+    # the model's 60 arcmin; nside 32 (110 arcmin, 1.8 times) would pass the factor 2.
+    path = _sky_file(tmp_path / "coarse.fits", nside=16)
+    cfg = make_cfg(store, tmp_path, model=store["run_id"], input=str(path), centres=[[0, 0]])
+    with pytest.raises(ValueError, match=r"NSIDE 16: its 220 arcmin pixels are 3.7 times .*>= 32"):
+        pipeline.run_prediction(cfg)
+
+
+def test_a_region_without_any_valid_centre_is_refused(store, tmp_path, no_compute):
+    from skymoments.maps.fits_io import write_healpix_map
+
+    path = _sky_file(tmp_path / "sky.fits")
+    mask = write_healpix_map(tmp_path / "mask.fits", np.zeros(12 * 16**2), ("MASK",))
+    cfg = make_cfg(
+        store, tmp_path, model=store["run_id"], input=str(path), healpix={"mask": str(mask)}
+    )
+    with pytest.raises(ValueError, match="no 16.00-degree patch fits inside the mask"):
+        pipeline.run_prediction(cfg)
+    # Listed centres none of which fits the latitude cut: refused, each one named.
+    cfg = make_cfg(
+        store,
+        tmp_path,
+        model=store["run_id"],
+        input=str(path),
+        centres=[[0, 5], [40, -10]],
+        healpix={"min_abs_lat": 30.0},
+    )
+    with pytest.raises(ValueError, match=r"no patch centre .*\(0, 5\), \(40, -10\)"):
+        pipeline.run_prediction(cfg)
+
+
+def test_sphere_prediction_skips_centres_outside_and_reports_each_step(
+    store, tmp_path, fake_loader
+):
+    import os
+
+    import healpy as hp
+
+    path = _sky_file(tmp_path / "iau.fits", convention="IAU")
+    lines = []
+    cfg = make_cfg(
+        store,
+        tmp_path,
+        model=store["run_id"],
+        input=str(path),
+        centres=[[0, 50], [0, 10], [100, -45]],
+        healpix={"min_abs_lat": 30.0},
+    )
+    old = os.umask(0o022)
+    try:
+        res = pipeline.run_prediction(cfg, progress=lines.append)
+    finally:
+        os.umask(old)
+    np.testing.assert_array_equal(res.centres, [[0, 50], [100, -45]])
+    text = "\n".join(lines)
+    assert "skipping 1 centre(s) whose patch leaves the valid region: (0, 10)" in text
+    assert "converted Q/U from IAU to COSMO" in text
+    for step in ("transforming the map", "evaluating 2 patch(es)", "forward pass", "projecting"):
+        assert step in text
+    # Outputs honour the umask like any new file (0o666 & ~0o022), not the private 0o600
+    # of temporary files.
+    for written in res.paths.values():
+        assert (written.stat().st_mode & 0o777) == 0o644, written
+    # The HEALPix output is partial sky: the covered pixels only, float32, no POLCCONV.
+    from astropy.io import fits
+
+    with fits.open(res.paths["healpix"]) as hdul:
+        head = hdul[1].header
+        assert head["OBJECT"] == "PARTIAL" and "POLCCONV" not in head
+        assert hdul[1].data["MEAN_E"].dtype.kind == "f" and head["TFORM2"] == "E"  # float32
+        pixels = hdul[1].data["PIXEL"]
+    sky = res.healpix_maps
+    np.testing.assert_array_equal(pixels, sky.pixels)
+    assert 0 < len(pixels) < 0.1 * hp.nside2npix(64)
+
+
+def test_tiling_a_latitude_cut_predicts_at_every_tile(store, tmp_path, fake_loader):
+    from skymoments.maps.tiling import tile_region
+
+    path = _sky_file(tmp_path / "sky.fits")
+    cfg = make_cfg(
+        store,
+        tmp_path,
+        model=store["run_id"],
+        input=str(path),
+        healpix={"min_abs_lat": 60.0, "overlap": 0.5},
+        log_run=False,
+    )
+    res = pipeline.run_prediction(cfg, progress=lambda line: None)
+    want = tile_region(FlatPatch(NPIX, PIXEL), 0.5, min_abs_lat=60.0)
+    np.testing.assert_array_equal(res.centres, want)
+    assert res.mean_eb.shape == (len(want), 2, NPIX, NPIX)
+    assert np.all(res.healpix_maps.counts >= 1) and res.healpix_maps.counts.max() > 1

@@ -478,6 +478,28 @@ def patch_to_healpix(
     kind: str = "auto",
     interpolation: str = "bilinear",
 ) -> np.ndarray:
+    """Project patch maps back onto a full-sky HEALPix map (:func:`patch_to_pixels`).
+
+    Returns
+    -------
+    ndarray, shape (k, 12 * nside**2), or (12 * nside**2,) for a (n, n) input
+        healpy.UNSEEN outside the patch.
+    """
+    pix, vals = patch_to_pixels(patch_maps, lon_deg, lat_deg, patch, nside, kind, interpolation)
+    out = np.full((vals.shape[0], 12 * int(nside) ** 2), UNSEEN)
+    out[:, pix] = vals
+    return out[0] if np.ndim(patch_maps) == 2 else out
+
+
+def patch_to_pixels(
+    patch_maps,
+    lon_deg: float,
+    lat_deg: float,
+    patch: FlatPatch,
+    nside: int,
+    kind: str = "auto",
+    interpolation: str = "bilinear",
+) -> tuple[np.ndarray, np.ndarray]:
     """Project patch maps back onto the HEALPix pixels that the patch covers.
 
     Each HEALPix pixel centre is taken into the gnomonic plane of the cut
@@ -501,8 +523,11 @@ def patch_to_healpix(
 
     Returns
     -------
-    ndarray, shape (k, 12 * nside**2), or (12 * nside**2,) for a (n, n) input
-        healpy.UNSEEN outside the patch.
+    pixels : ndarray of int, shape (p,)
+        RING indices of the HEALPix pixels the patch covers (found with ``query_disc``
+        about the centre, so the cost grows with the patch, not with the sky).
+    values : ndarray, shape (k, p)
+        The fields at those pixels.
     """
     arr = np.asarray(patch_maps, dtype=float)
     single = arr.ndim == 2
@@ -555,6 +580,4 @@ def patch_to_healpix(
         g = _frame_angle(v[inside], tx @ inv, ty @ inv)
         vals[iq], vals[iq + 1] = _spin2_rotate(vals[iq], vals[iq + 1], g)
 
-    out = np.full((k, hp.nside2npix(nside)), UNSEEN)
-    out[:, pix] = vals
-    return out[0] if single else out
+    return pix, vals

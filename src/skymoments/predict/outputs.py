@@ -10,8 +10,13 @@ Files (``<name>`` is ``predict.name``, default ``posterior``), under ``predict.o
 ``<name>.png``
     Quick look: mean E, mean B, std E, std B for the first patches.
 ``<name>_healpix.fits``
-    HEALPix input only: columns ``MEAN_E``, ``MEAN_B``, ``STD_E``, ``STD_B`` (uK, RING),
-    ``healpy.UNSEEN`` outside the patches (:func:`project_to_healpix`).
+    HEALPix input only: a partial-sky table (``OBJECT = 'PARTIAL'``, explicit ``PIXEL``
+    indices, RING) of the pixels the patches cover, float32 columns ``MEAN_E``, ``MEAN_B``,
+    ``STD_E``, ``STD_B`` (uK) and ``N_PATCH``, overlaps combined by inverse variance
+    (:func:`project_to_healpix`); no ``POLCCONV`` card, as E and B are scalars. Read it with
+    ``healpy.read_map(path, field=None, partial=True)``.
+
+Files are written with the mode the user's umask gives a new file, like any other output.
 
 Everything is first written into a hidden staging folder beside the outputs and moved into
 place (``os.replace``, atomic per file) only once every file is complete; on any error the
@@ -25,6 +30,7 @@ import os
 import shutil
 import tempfile
 from collections.abc import Mapping
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -33,6 +39,7 @@ import numpy as np
 from skymoments.maps.geometry import FlatPatch
 
 __all__ = [
+    "SkyPosterior",
     "check_outputs",
     "output_paths",
     "project_to_healpix",
@@ -159,6 +166,39 @@ def _stamp_fits(path: Path, cards: list[tuple[str, Any, str]]) -> None:
         hdul.flush()
 
 
+@dataclass
+class SkyPosterior:
+    """Posterior maps on the HEALPix pixels the patches cover (partial sky).
+
+    Attributes
+    ----------
+    nside : int
+    pixels : ndarray of int, shape (p,)
+        RING indices, increasing.
+    maps : ndarray, shape (4, p), microkelvin
+        MEAN_E, MEAN_B, STD_E, STD_B.
+    counts : ndarray of int, shape (p,)
+        How many patches cover each pixel.
+    """
+
+    nside: int
+    pixels: np.ndarray
+    maps: np.ndarray
+    counts: np.ndarray
+
+    def full_sky(self) -> np.ndarray:
+        """The maps as (4, 12 * nside**2), healpy.UNSEEN outside the patches."""
+        import healpy as hp
+
+        out = np.full((4, hp.nside2npix(self.nside)), hp.UNSEEN)
+        out[:, self.pixels] = self.maps
+        return out
+
+
+# Floor of a patch variance in the weights, uK^2 (a zero std would take all the weight).
+_MIN_VARIANCE = 1e-30
+
+
 def project_to_healpix(
     mean_eb: np.ndarray,
     std_eb: np.ndarray,
@@ -166,8 +206,19 @@ def project_to_healpix(
     patch: FlatPatch,
     nside: int,
     interpolation: str = "bilinear",
-) -> tuple[np.ndarray, np.ndarray]:
-    """Project patch posteriors back onto HEALPix pixels, averaging where patches overlap.
+) -> SkyPosterior:
+    """Project patch posteriors onto HEALPix pixels, combining overlaps by inverse variance.
+
+    Each patch is sampled at the HEALPix pixels it covers only
+    (:func:`skymoments.maps.healpix.patch_to_pixels`), so the cost grows with the patch
+    pixels, not with the sky. Where ``K`` patches cover a pixel, with means ``mu_k`` and
+    stds ``s_k`` there (E and B separately), the weights are ``w_k = 1 / s_k^2`` and
+
+    - mean: ``sum_k w_k mu_k / sum_k w_k`` (the inverse-variance weighted mean);
+    - std: ``sqrt(K / sum_k w_k)``, the square root of the harmonic mean of the variances.
+      Overlapping patches see the same data, so they are not independent estimates and the
+      combination is given no smaller an error than its patches (``1 / sqrt(sum w_k)``
+      would claim a K-fold gain that the data do not hold).
 
     Parameters
     ----------
@@ -178,38 +229,35 @@ def project_to_healpix(
     nside : int
         Output resolution.
     interpolation : {"bilinear", "nearest"}
-        See :func:`skymoments.maps.healpix.patch_to_healpix`.
+        See :func:`skymoments.maps.healpix.patch_to_pixels`.
 
     Returns
     -------
-    maps : ndarray, shape (4, 12 * nside**2), microkelvin
-        MEAN_E, MEAN_B, STD_E, STD_B; ``healpy.UNSEEN`` outside every patch. The mean maps
-        are averaged over the patches covering a pixel; the std maps are the square root of
-        the averaged variances, the std of an equal-weight mixture of the patch posteriors
-        when their means agree (E and B are scalars on the sphere: ``maps.healpix``).
-    counts : ndarray, shape (12 * nside**2,), int
-        How many patches cover each pixel.
+    SkyPosterior
     """
-    import healpy as hp
+    from skymoments.maps.healpix import patch_to_pixels
 
-    from skymoments.maps.healpix import UNSEEN, patch_to_healpix
-
-    npix = hp.nside2npix(nside)
-    sums = np.zeros((4, npix))
-    counts = np.zeros(npix, dtype=np.int64)
+    pix_all, val_all = [], []
     for k, (lon, lat) in enumerate(np.asarray(centres, dtype=float)):
-        fields = np.stack([mean_eb[k, 0], mean_eb[k, 1], std_eb[k, 0] ** 2, std_eb[k, 1] ** 2])
-        on_sphere = patch_to_healpix(
+        var = np.maximum(std_eb[k] ** 2, _MIN_VARIANCE)
+        fields = np.concatenate([mean_eb[k], var])
+        pix, vals = patch_to_pixels(
             fields, lon, lat, patch, nside, kind="scalar", interpolation=interpolation
         )
-        seen = on_sphere[0] != UNSEEN
-        sums[:, seen] += on_sphere[:, seen]
-        counts[seen] += 1
-    out = np.full((4, npix), UNSEEN)
-    covered = counts > 0
-    out[:2, covered] = sums[:2, covered] / counts[covered]
-    out[2:, covered] = np.sqrt(sums[2:, covered] / counts[covered])
-    return out, counts
+        pix_all.append(pix)
+        val_all.append(vals)
+    pix = np.concatenate(pix_all) if pix_all else np.zeros(0, dtype=np.int64)
+    vals = np.concatenate(val_all, axis=1) if val_all else np.zeros((4, 0))
+    pixels, where = np.unique(pix, return_inverse=True)
+    p = len(pixels)
+    counts = np.bincount(where, minlength=p)
+    out = np.empty((4, p))
+    for f in range(2):
+        w = 1.0 / vals[2 + f]
+        wsum = np.bincount(where, weights=w, minlength=p)
+        out[f] = np.bincount(where, weights=w * vals[f], minlength=p) / wsum
+        out[2 + f] = np.sqrt(counts / wsum)
+    return SkyPosterior(int(nside), pixels.astype(np.int64), out, counts.astype(np.int64))
 
 
 def quicklook_figure(
@@ -247,16 +295,17 @@ def quicklook_figure(
         ("std B", lambda k: std_eb[k, 1], "viridis", False),
     )
     for r in range(rows):
+        # E and B share one colour scale per row (means, and stds), so that a faint B map
+        # does not look as strong as E; the titles state the rms of each.
+        mean_lim = float(np.max(np.abs(mean_eb[r]))) or 1.0
+        std_lo, std_hi = float(np.min(std_eb[r])), float(np.max(std_eb[r]))
         for c, (label, get, cmap, symmetric) in enumerate(panels):
             ax = axes[r, c]
             img = get(r)
-            if symmetric:
-                lim = float(np.max(np.abs(img))) or 1.0
-                vmin, vmax = -lim, lim
-            else:
-                vmin, vmax = float(np.min(img)), float(np.max(img))
+            vmin, vmax = (-mean_lim, mean_lim) if symmetric else (std_lo, std_hi)
             im = ax.imshow(img, origin="lower", cmap=cmap, vmin=vmin, vmax=vmax, extent=extent)
-            title = f"{label} [uK]"
+            rms = float(np.sqrt(np.mean(img**2)))
+            title = f"{label} [uK], rms {rms:.3g}"
             if c == 0 and titles:
                 title = f"{titles[r]}\n{title}"
             ax.set_title(title, fontsize=8)
@@ -268,6 +317,13 @@ def quicklook_figure(
             fig.colorbar(im, ax=ax, fraction=0.046, pad=0.02).ax.tick_params(labelsize=6)
     fig.tight_layout()
     return fig
+
+
+def _umask_mode() -> int:
+    """Mode of a new regular file under the process umask (0o666 & ~umask, POSIX open)."""
+    mask = os.umask(0)
+    os.umask(mask)
+    return 0o666 & ~mask
 
 
 def write_outputs(
@@ -296,8 +352,9 @@ def write_outputs(
     force : bool
         Replace existing outputs; otherwise they are refused (checked again just before the
         move, in case a file appeared meanwhile).
-    healpix_maps : ndarray, shape (4, 12 * nside**2), optional
-        Needed when ``paths`` has a ``healpix`` entry.
+    healpix_maps : SkyPosterior, optional
+        Needed when ``paths`` has a ``healpix`` entry; written as a partial-sky float32
+        table (explicit pixel indices) with columns MEAN_E, MEAN_B, STD_E, STD_B, N_PATCH.
     titles : list of str, optional
         Quick-look row labels.
     quicklook_rows : int
@@ -308,7 +365,7 @@ def write_outputs(
         The written files.
     """
     from skymoments.calibration.report import write_posterior
-    from skymoments.maps.fits_io import write_healpix_map
+    from skymoments.maps.fits_io import write_partial_healpix
 
     folders = {p.parent for p in paths.values()}
     if len(folders) != 1:
@@ -331,15 +388,20 @@ def write_outputs(
         fig.savefig(staged["png"], dpi=110, format="png")
         if "healpix" in paths:
             staged["healpix"] = staging / paths["healpix"].name
-            write_healpix_map(
+            sky = healpix_maps
+            write_partial_healpix(
                 staged["healpix"],
-                healpix_maps,
-                column_names=("MEAN_E", "MEAN_B", "STD_E", "STD_B"),
+                sky.pixels,
+                np.concatenate([sky.maps, sky.counts[None].astype(float)]),
+                sky.nside,
+                column_names=("MEAN_E", "MEAN_B", "STD_E", "STD_B", "N_PATCH"),
                 units="uK",
                 extra_header=cards,
             )
         check_outputs(paths, force)
+        mode = _umask_mode()
         for role, final in paths.items():
+            os.chmod(staged[role], mode)  # temporary files are created private (mode 600)
             os.replace(staged[role], final)
     finally:
         shutil.rmtree(staging, ignore_errors=True)

@@ -19,7 +19,8 @@ from __future__ import annotations
 
 import datetime as _dt
 import os
-import warnings
+import sys
+import time
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -44,8 +45,24 @@ from skymoments.tracking import load_model
 __all__ = ["PredictOptions", "PredictionResult", "cut_patches", "run_prediction"]
 
 INTERPOLATIONS = ("bilinear", "nearest")
+# How patches are cut from a HEALPix map: ``fast`` evaluates one band-limited
+# representation at the patch pixels (maps.sky_cuts); ``exact`` is the reference that
+# rotates the alms per centre (maps.healpix.cut_patch); ``bilinear`` interpolates pixels.
+CUTS = ("fast", "exact", "bilinear")
+# The keys of the predict.healpix node (flattened into PredictOptions).
+HEALPIX_KEYS = (
+    "fields",
+    "hdu",
+    "nside",
+    "cut",
+    "lmax",
+    "interpolation",
+    "mask",
+    "min_abs_lat",
+    "overlap",
+)
 # A HEALPix map whose pixels are much coarser than the model's holds no power on the scales
-# the network was trained to see: we warn when the HEALPix pixel side exceeds this many
+# the network was trained to see: refused when the HEALPix pixel side exceeds this many
 # patch pixels (a rule of thumb, common practice: resolve a scale with >= 2 samples).
 COARSE_MAP_FACTOR = 2.0
 
@@ -64,9 +81,12 @@ class PredictOptions:
     fields: tuple = ("Q", "U")
     hdu: int = 1
     nside: int | None = None
-    rotate_alms: bool = True
+    cut: str = "fast"
     lmax: int | None = None
     interpolation: str = "bilinear"
+    mask: str | None = None
+    min_abs_lat: float | None = None
+    overlap: float = 0.25
     out: str | None = None
     name: str = "posterior"
     force: bool = False
@@ -101,17 +121,13 @@ class PredictOptions:
         else:
             plain = dict(node)
         hp_node = dict(plain.pop("healpix", None) or {})
-        known = {
-            f
-            for f in cls.__dataclass_fields__
-            if f not in ("fields", "hdu", "nside", "rotate_alms", "lmax", "interpolation")
-        }
+        known = {f for f in cls.__dataclass_fields__ if f not in HEALPIX_KEYS}
         unknown = sorted(set(plain) - known)
         if unknown:
             raise ValueError(
                 f"unknown predict keys {unknown}; see conf/predict/default.yaml for the keys"
             )
-        hp_known = {"fields", "hdu", "nside", "rotate_alms", "lmax", "interpolation"}
+        hp_known = set(HEALPIX_KEYS)
         hp_unknown = sorted(set(hp_node) - hp_known)
         if hp_unknown:
             raise ValueError(
@@ -142,9 +158,21 @@ class PredictOptions:
             value = getattr(self, key)
             if value is not None and (isinstance(value, bool) or not isinstance(value, int)):
                 raise ValueError(f"predict.healpix.{key} must be an integer or null, got {value!r}")
-        for key in ("force", "log_run", "rotate_alms"):
+        for key in ("force", "log_run"):
             if not isinstance(getattr(self, key), bool):
                 raise ValueError(f"predict.{key} must be true or false, got {getattr(self, key)!r}")
+        if self.cut not in CUTS:
+            raise ValueError(f"predict.healpix.cut={self.cut!r}; choose one of {CUTS}")
+        ov = self.overlap
+        if isinstance(ov, bool) or not isinstance(ov, int | float) or not 0 <= ov < 1:
+            raise ValueError(f"predict.healpix.overlap={ov!r} must be a number in [0, 1)")
+        cut = self.min_abs_lat
+        if cut is not None and (
+            isinstance(cut, bool) or not isinstance(cut, int | float) or not 0 <= cut < 90
+        ):
+            raise ValueError(
+                f"predict.healpix.min_abs_lat={cut!r} must be a latitude in [0, 90) degrees or null"
+            )
 
 
 @dataclass
@@ -162,8 +190,9 @@ class PredictionResult:
     source : ModelSource
     input : MapInput
     centres : ndarray, shape (m, 2), degrees, or None
-    healpix_maps : ndarray, shape (4, 12 * nside**2), or None
-        MEAN_E, MEAN_B, STD_E, STD_B on the sphere (HEALPix input).
+    healpix_maps : SkyPosterior or None
+        MEAN_E, MEAN_B, STD_E, STD_B on the HEALPix pixels the patches cover, combined
+        with inverse-variance weights (:func:`skymoments.predict.outputs.project_to_healpix`).
     paths : dict of role to Path
     provenance : dict
     prediction_run_id : str or None
@@ -177,7 +206,7 @@ class PredictionResult:
     source: ModelSource
     input: MapInput
     centres: np.ndarray | None = None
-    healpix_maps: np.ndarray | None = None
+    healpix_maps: Any = None
     paths: dict = field(default_factory=dict)
     provenance: dict = field(default_factory=dict)
     prediction_run_id: str | None = None
@@ -187,23 +216,32 @@ def cut_patches(
     maps_qu: np.ndarray,
     centres: np.ndarray,
     patch: FlatPatch,
-    rotate_alms: bool = True,
+    cut: str = "fast",
     lmax: int | None = None,
+    progress=None,
 ) -> np.ndarray:
-    """Cut one Q/U patch per centre from a full-sky COSMO map (``maps.healpix.cut_patch``).
+    """Cut one Q/U patch per centre from a full-sky COSMO map (:data:`CUTS`).
 
     Returns
     -------
     ndarray, shape (k, 2, n, n), microkelvin, patch frame
     """
+    say = progress or (lambda msg: None)
+    if cut == "fast":
+        from skymoments.maps.sky_cuts import cut_patches as band_limited_cut
+        from skymoments.maps.sky_cuts import sky_harmonics
+
+        say("transforming the map to E/B alms (once)")
+        harmonics = sky_harmonics(maps_qu, lmax=lmax)
+        say(f"evaluating {len(centres)} patch(es) at lmax {harmonics.lmax}")
+        return band_limited_cut(harmonics, centres, patch)
     from skymoments.maps.healpix import cut_patch
 
-    return np.stack(
-        [
-            cut_patch(maps_qu, lon, lat, patch, rotate_alms=rotate_alms, lmax=lmax)
-            for lon, lat in np.asarray(centres, dtype=float)
-        ]
-    )
+    out = []
+    for k, (lon, lat) in enumerate(np.asarray(centres, dtype=float)):
+        say(f"cutting patch {k + 1}/{len(centres)} ({cut} path)")
+        out.append(cut_patch(maps_qu, lon, lat, patch, rotate_alms=cut == "exact", lmax=lmax))
+    return np.stack(out)
 
 
 def _out_dir(opts: PredictOptions, default: str | os.PathLike | None) -> Path:
@@ -224,21 +262,69 @@ def _check_healpix(inp: MapInput, patch: FlatPatch, opts: PredictOptions) -> int
     nside_out = inp.nside
     if opts.nside is not None:
         nside_out = check_nside(opts.nside, "predict.healpix.nside")
-    if opts.lmax is not None and not 2 <= opts.lmax <= 4 * inp.nside:
+    if opts.lmax is not None and not 2 <= opts.lmax <= 3 * inp.nside - 1:
         raise ValueError(
-            f"predict.healpix.lmax={opts.lmax} must lie in [2, {4 * inp.nside}] for an nside "
+            f"predict.healpix.lmax={opts.lmax} must lie in [2, {3 * inp.nside - 1}] for an nside "
             f"{inp.nside} map"
         )
     resol = hp.nside2resol(inp.nside, arcmin=True)
-    if resol > COARSE_MAP_FACTOR * patch.pixel_arcmin:
-        warnings.warn(
-            f"{inp.path} has {resol:.3g} arcmin HEALPix pixels, much coarser than the model's "
-            f"{patch.pixel_arcmin:g} arcmin patch pixels: the cut patches lack the small "
-            "scales the network was trained on",
-            RuntimeWarning,
-            stacklevel=3,
+    ratio = resol / patch.pixel_arcmin
+    if ratio > COARSE_MAP_FACTOR:
+        need = inp.nside
+        while hp.nside2resol(need, arcmin=True) > COARSE_MAP_FACTOR * patch.pixel_arcmin:
+            need *= 2
+        raise ValueError(
+            f"{inp.path} has NSIDE {inp.nside}: its {resol:.3g} arcmin pixels are {ratio:.2g} "
+            f"times the model's {patch.pixel_arcmin:g} arcmin patch pixels (at most "
+            f"{COARSE_MAP_FACTOR:g} accepted), so the patches would lack the scales the "
+            f"network was trained on; give a map of NSIDE >= {need}"
         )
     return int(nside_out)
+
+
+def _centres(inp: MapInput, patch: FlatPatch, opts: PredictOptions, say) -> np.ndarray:
+    """The patch centres: listed, or tiling the mask / latitude cut; outside ones skipped."""
+    from skymoments.maps.tiling import inside_region, tile_region
+
+    mask = None
+    if opts.mask not in (None, ""):
+        mask = _read_mask(Path(str(opts.mask)).expanduser())
+    if opts.centres is None:
+        if mask is None and opts.min_abs_lat is None:
+            return parse_centres(None)  # refuses: no centres and no region
+        centres = tile_region(patch, opts.overlap, mask, opts.min_abs_lat)
+        say(f"{len(centres)} centre(s) tile the region at overlap {opts.overlap:g}")
+        return centres
+    centres = parse_centres(opts.centres)
+    keep = inside_region(centres, patch, mask, opts.min_abs_lat)
+    if not keep.all():
+        skipped = ", ".join(f"({lon:g}, {lat:g})" for lon, lat in centres[~keep])
+        if not keep.any():
+            raise ValueError(
+                f"no patch centre lies with its whole patch in the valid region "
+                f"(predict.healpix.mask / min_abs_lat): {skipped}; choose centres inside it"
+            )
+        n_out = int((~keep).sum())
+        say(f"skipping {n_out} centre(s) whose patch leaves the valid region: {skipped}")
+    return centres[keep]
+
+
+def _read_mask(path: Path) -> np.ndarray:
+    """A HEALPix mask (first column, RING) as float; > 0.5 means valid."""
+    import healpy as hp
+
+    from skymoments.maps.fits_io import check_fits_file
+
+    if not path.is_file():
+        raise ValueError(f"predict.healpix.mask={str(path)!r}: no such file")
+    check_fits_file(path, "HEALPix mask").close()
+    try:
+        mask = np.asarray(hp.read_map(str(path), field=0, dtype=np.float64), dtype=float)
+    except (OSError, ValueError, TypeError, KeyError) as exc:
+        raise ValueError(f"{path} is not a HEALPix mask map: {exc}") from exc
+    if not np.isfinite(mask[mask != hp.UNSEEN]).all():
+        raise ValueError(f"mask {path} has NaN or infinite values; use 0 (masked) and 1 (valid)")
+    return mask
 
 
 def _provenance(source: ModelSource, inp: MapInput, centres, nside_out) -> dict[str, Any]:
@@ -352,8 +438,13 @@ def _plain_options(opts: PredictOptions) -> dict[str, Any]:
     return out
 
 
+def _say(message: str) -> None:
+    """One progress line on stderr (the summary table goes to stdout)."""
+    print(f"predict: {message}", file=sys.stderr, flush=True)
+
+
 def run_prediction(
-    cfg: DictConfig, default_out: str | os.PathLike | None = None
+    cfg: DictConfig, default_out: str | os.PathLike | None = None, progress=None
 ) -> PredictionResult:
     """Check, compute and write one prediction (module docstring for the order of work).
 
@@ -364,6 +455,8 @@ def run_prediction(
         not: the geometry is the model's own).
     default_out : path-like, optional
         Output folder when ``predict.out`` is null (the command passes the Hydra job folder).
+    progress : callable(str), optional
+        Receives one line per long step; default: printed to stderr.
 
     Returns
     -------
@@ -386,12 +479,15 @@ def run_prediction(
             f"predict.centres is for HEALPix maps, but {input_path} is a flat {kind} input "
             "whose patches are already cut; drop predict.centres"
         )
-    centres = parse_centres(opts.centres) if kind == "healpix" else None
+    if kind == "healpix" and opts.centres is not None:
+        parse_centres(opts.centres)  # refuse a malformed list before any lookup
+    say = progress if progress is not None else _say
     paths = output_paths(_out_dir(opts, default_out), opts.name, healpix=kind == "healpix")
     check_outputs(paths, opts.force)
 
     source = resolve_model_source(opts.model, cfg.tracking)
     patch = source.patch
+    started = time.perf_counter()
     inp = read_input(
         input_path,
         kind,
@@ -403,24 +499,36 @@ def run_prediction(
     )
     label = f"model {source.uri} (run {source.run_id})"
     nside_out = None
+    centres = None
     if kind == "healpix":
         nside_out = _check_healpix(inp, patch, opts)
+        notes = []
+        centres = _centres(inp, patch, opts, notes.append)
+        # Every check passed: from here on, one line per long step.
+        say(f"read {input_path} (NSIDE {inp.nside}) in {time.perf_counter() - started:.1f} s")
+        if inp.convention != "COSMO":
+            say(f"converted Q/U from {inp.convention} to COSMO (U sign flipped)")
+        for note in notes:
+            say(note)
     else:
         check_patch_geometry(inp, patch, model=label)
     device = _device(str(opts.device))
 
     # --- compute, all checks passed ---------------------------------------------------
     if kind == "healpix":
-        data = cut_patches(inp.maps_qu, centres, patch, opts.rotate_alms, opts.lmax)
+        data = cut_patches(inp.maps_qu, centres, patch, opts.cut, opts.lmax, progress=say)
     else:
         data = inp.data_qu
     from skymoments.moments.pipeline import predict_moments
 
+    say("loading the model")
     model = _load(source, cfg.tracking).to(device)
+    say(f"forward pass on {len(data)} patch(es) ({device})")
     mean, std = predict_moments(model, data, batch_size=opts.batch_size, device=device)
     hp_maps = None
     if kind == "healpix":
-        hp_maps, _ = project_to_healpix(mean, std, centres, patch, nside_out, opts.interpolation)
+        say(f"projecting {len(mean)} patch(es) back onto HEALPix NSIDE {nside_out}")
+        hp_maps = project_to_healpix(mean, std, centres, patch, nside_out, opts.interpolation)
 
     prov = _provenance(source, inp, centres, nside_out)
     result = PredictionResult(
