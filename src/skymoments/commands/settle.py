@@ -30,6 +30,7 @@ def settle(cfg: DictConfig) -> list[str]:
     from skymoments.compare.select import check_store
     from skymoments.tracking import settings_from
     from skymoments.tracking.liveness import find_lost_runs, last_heartbeat_s, mark_lost
+    from skymoments.tracking.store import require_writable
 
     node = cfg.get("settle") or {}
     limit = node.get("lost_after_s")
@@ -45,6 +46,8 @@ def settle(cfg: DictConfig) -> list[str]:
             )
     settings = settings_from(cfg.tracking)
     check_store(settings)
+    if bool(node.get("mark", False)):
+        require_writable(settings, "mark runs KILLED")
     experiment = node.get("experiment")
     lost, running = find_lost_runs(settings, experiment=experiment, lost_after_s=limit)
     where = f"experiment {experiment!r}" if experiment else "every experiment"

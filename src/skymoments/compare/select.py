@@ -17,7 +17,7 @@ from mlflow.exceptions import MlflowException
 
 from skymoments.tracking import RunRecord, find_runs, get_run
 from skymoments.tracking.settings import TrackingSettings, settings_from
-from skymoments.tracking.store import client_for, with_retries
+from skymoments.tracking.store import client_for, connect_read_only, with_retries
 
 __all__ = ["RUN_KIND_TAG", "SWEEP_ID_TAG", "Selection", "check_store", "select_runs"]
 
@@ -54,8 +54,8 @@ class Selection:
 
 def _has_mlflow_schema(path) -> bool:
     try:
-        uri = f"{path.absolute().as_uri()}?mode=ro"
-        with contextlib.closing(sqlite3.connect(uri, uri=True)) as con:
+        # Read-only, and readable even in a folder this user cannot write.
+        with contextlib.closing(connect_read_only(path)) as con:
             row = con.execute("SELECT version_num FROM alembic_version").fetchone()
     except sqlite3.Error:
         return False

@@ -112,6 +112,14 @@ def load_bank(path) -> tuple[np.ndarray, dict]:
         meta = json.loads(meta_path.read_text())
     except json.JSONDecodeError as err:
         raise ValueError(f"bank metadata {meta_path} is not valid JSON ({err}); rebuild") from err
+    except UnicodeDecodeError as err:
+        raise ValueError(f"bank metadata {meta_path} is not text ({err}); rebuild") from err
+    if not isinstance(meta, dict):
+        # Valid JSON that is not an object (a list, a number, null) describes no bank.
+        raise ValueError(
+            f"bank metadata {meta_path} holds a JSON {type(meta).__name__}, not an object; "
+            "rebuild the bank"
+        )
     fmt = meta.get("format")
     if fmt not in (FORMAT, FORMAT_V1):
         raise ValueError(

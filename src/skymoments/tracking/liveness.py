@@ -292,9 +292,10 @@ def mark_lost(tracking, run_ids) -> None:
     The end time is the run's last heartbeat: as near as the store knows to when it died.
     """
     from skymoments.tracking.settings import settings_from
-    from skymoments.tracking.store import client_for, with_retries
+    from skymoments.tracking.store import client_for, require_writable, with_retries
 
     settings = settings_from(tracking)
+    require_writable(settings, "mark runs KILLED")
     client = client_for(settings)
     for run_id in run_ids:
         run = with_retries(settings, f"read run {run_id}", lambda r=run_id: client.get_run(r))

@@ -30,7 +30,13 @@ from typing import Any
 import yaml
 
 from skymoments.tracking.settings import settings_from
-from skymoments.tracking.store import client_for, mlflow_uris, with_retries
+from skymoments.tracking.store import (
+    client_for,
+    mlflow_uris,
+    reading_uri,
+    require_writable,
+    with_retries,
+)
 
 __all__ = [
     "ENV_UNSAFE_UNPICKLE",
@@ -272,10 +278,12 @@ def load_model(
     client_for(settings)  # prepares the store, probes a server, gives a clear error if down
     uri = model_uri(ref)
 
+    source = reading_uri(settings)
+
     def fetch(dst: str) -> str:
-        with mlflow_uris(settings.tracking_uri), _no_progress_bar():
+        with mlflow_uris(source), _no_progress_bar():
             return mlflow.artifacts.download_artifacts(
-                artifact_uri=uri, dst_path=dst, tracking_uri=settings.tracking_uri
+                artifact_uri=uri, dst_path=dst, tracking_uri=source
             )
 
     with tempfile.TemporaryDirectory() as tmp:
@@ -288,7 +296,7 @@ def load_model(
     import mlflow.pytorch
 
     def load() -> Any:
-        with mlflow_uris(settings.tracking_uri):
+        with mlflow_uris(source):
             return mlflow.pytorch.load_model(uri, map_location=map_location)
 
     return with_retries(settings, f"load pickled model {uri}", load)
@@ -297,6 +305,7 @@ def load_model(
 def set_model_alias(tracking: Any, name: str, version: int | str, alias: str) -> None:
     """Point ``models:/name@alias`` at ``version`` of registered model ``name``."""
     settings = settings_from(tracking)
+    require_writable(settings, "set a model alias")
     client = client_for(settings)
     with_retries(
         settings,

@@ -49,6 +49,7 @@ from skymoments.tracking.store import (
     is_connection_error,
     mlflow_uris,
     probe_server,
+    require_writable,
     with_retries,
 )
 from skymoments.tracking.sweep import HydraJob, current_job, read_parent
@@ -542,6 +543,7 @@ def tracked_run(
         yield TrackedRun(settings, os.environ.get(ENV_RUN_ID), None, passive=True)
         return
 
+    require_writable(settings)
     client = client_for(settings)
     experiment_id = ensure_experiment(client, settings, settings.experiment)
     job = current_job()
@@ -654,6 +656,7 @@ def attach_run(tracking: Any, run_id: str) -> TrackedRun:
     run_id : str
     """
     settings = settings_from(tracking)
+    require_writable(settings, "add to a run")
     client = client_for(settings)
     info = with_retries(settings, "read the run", lambda: client.get_run(run_id).info)
     return TrackedRun(settings, run_id, info.experiment_id)

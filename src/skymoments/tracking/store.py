@@ -22,12 +22,15 @@ server that goes away mid-run is declared gone only after several minutes.
 
 from __future__ import annotations
 
+import atexit
 import contextlib
 import fcntl
 import logging
 import os
 import random
+import shutil
 import sqlite3
+import tempfile
 import threading
 import time
 import urllib.error
@@ -43,12 +46,15 @@ from mlflow.exceptions import MlflowException
 from skymoments.tracking.settings import TrackingSettings, sqlite_path
 
 __all__ = [
+    "StoreReadOnlyError",
     "TrackingAccessError",
     "TrackingUnavailableError",
     "client_for",
     "ensure_experiment",
     "mlflow_uris",
     "prepare_store",
+    "reading_uri",
+    "require_writable",
     "with_retries",
 ]
 
@@ -73,6 +79,10 @@ class TrackingUnavailableError(RuntimeError):
 class TrackingAccessError(TrackingUnavailableError):
     """The store refuses this client: missing or wrong credentials, or credentials kept where
     others can read them (in the URI, or in a credentials file open to other users)."""
+
+
+class StoreReadOnlyError(TrackingAccessError):
+    """A local store this process may read but not write, asked to record something."""
 
 
 # Where MLflow's client reads credentials besides MLFLOW_TRACKING_USERNAME/PASSWORD
@@ -261,18 +271,117 @@ def probe_server(uri: str, timeout: float = _PROBE_TIMEOUT_S) -> None:
         raise TrackingUnavailableError(unavailable_message(uri, f"{reason}")) from exc
 
 
+def connect_read_only(db: Path) -> sqlite3.Connection:
+    """A read-only connection to SQLite file ``db``, that writes nothing beside it.
+
+    ``mode=ro`` first; a database in write-ahead-log mode in a folder this process cannot
+    write cannot be opened so (SQLite needs to create its ``-shm`` index), and is then opened
+    ``immutable=1``: read as it is on disk, with no locking. That is right for a store no one
+    can write; a store its owner is writing keeps its ``-shm``, and ``mode=ro`` works there.
+    """
+    uri = db.absolute().as_uri()
+    con = sqlite3.connect(f"{uri}?mode=ro", uri=True)
+    try:
+        con.execute("SELECT 1 FROM sqlite_master LIMIT 1").fetchall()
+        return con
+    except sqlite3.OperationalError:
+        con.close()
+    wal = db.with_name(db.name + "-wal")
+    if wal.is_file() and wal.stat().st_size > 0:
+        # Committed transactions still in the log (a writer that did not close cleanly):
+        # ``immutable`` would not see them. A copy of both files, opened where SQLite may
+        # write, replays the log into the copy.
+        copy = _private_folder() / db.name
+        shutil.copyfile(db, copy)
+        shutil.copyfile(wal, copy.with_name(copy.name + "-wal"))
+        return sqlite3.connect(copy)
+    return sqlite3.connect(f"{uri}?immutable=1", uri=True)
+
+
+def _private_folder() -> Path:
+    """A new temporary folder, removed when the process ends."""
+    folder = Path(tempfile.mkdtemp(prefix="skymoments-read-only-store-"))
+    atexit.register(shutil.rmtree, folder, True)
+    return folder
+
+
 def _schema_present(db: Path) -> bool:
     """True when MLflow's schema is in ``db`` (its migration table has a version)."""
     if not db.exists() or db.stat().st_size == 0:
         return False
     try:
-        with contextlib.closing(
-            sqlite3.connect(f"{db.absolute().as_uri()}?mode=ro", uri=True)
-        ) as con:
+        with contextlib.closing(connect_read_only(db)) as con:
             row = con.execute("SELECT version_num FROM alembic_version").fetchone()
     except sqlite3.Error:
         return False
     return row is not None and bool(row[0])
+
+
+def read_only_reason(db: Path) -> str | None:
+    """Why this process cannot write the SQLite store ``db`` (None when it can).
+
+    A store needs its file and its folder writable (SQLite writes its journal and ``-shm``
+    beside the database, and the lock file lives there too).
+    """
+    if db.exists() and not os.access(db, os.W_OK):
+        return f"{db} is read-only for this user"
+    folder = db.parent
+    while not folder.exists() and folder != folder.parent:
+        folder = folder.parent
+    if not os.access(folder, os.W_OK):
+        return f"its folder {folder} is read-only for this user"
+    return None
+
+
+_SNAPSHOTS: dict[str, str] = {}
+
+
+def _snapshot(db: Path) -> str:
+    """The URI of a private copy of read-only store ``db``, made once per process.
+
+    MLflow's SQLite client cannot open a write-ahead-log database in a folder it cannot
+    write, so reads go to a consistent copy (SQLite's online backup) in a temporary folder.
+    Artifact locations in it stay the original absolute paths, so artifacts are read in
+    place. Nothing is ever written to the copy: writers refuse a read-only store first.
+    """
+    key = str(db)
+    if key not in _SNAPSHOTS:
+        copy = _private_folder() / db.name
+        with contextlib.closing(connect_read_only(db)) as src:
+            with contextlib.closing(sqlite3.connect(copy)) as dst:
+                src.backup(dst)
+                dst.execute("PRAGMA journal_mode=DELETE")
+        _SNAPSHOTS[key] = f"sqlite:///{copy}"
+        log.info("%s cannot be written; reading a copy of it", db)
+    return _SNAPSHOTS[key]
+
+
+def reading_uri(settings: TrackingSettings) -> str:
+    """The URI that reads ``settings``' store: itself, or a copy of a read-only SQLite store."""
+    db = settings.sqlite_path
+    if db is not None and db.is_file() and read_only_reason(db) is not None:
+        return _snapshot(db)
+    return settings.tracking_uri
+
+
+def require_writable(settings: TrackingSettings, what: str = "track a run") -> None:
+    """Refuse, in one line, to write to a local store this process cannot write.
+
+    Raises
+    ------
+    StoreReadOnlyError
+    """
+    db = settings.sqlite_path
+    if db is None:
+        return
+    reason = read_only_reason(db)
+    if reason is not None:
+        raise StoreReadOnlyError(
+            f"the tracking store {db} cannot be written ({reason}), so skymoments cannot "
+            f"{what} there; reading it works (compare with compare.log_report=false, "
+            "settle without settle.mark); to write, point tracking.root at a folder you can "
+            "write"
+        )
 
 
 def prepare_store(settings: TrackingSettings) -> None:
@@ -291,7 +400,15 @@ def prepare_store(settings: TrackingSettings) -> None:
         probe_server(uri)
     else:
         db = sqlite_path(uri)
-        if db is not None:
+        if db is not None and read_only_reason(db) is not None:
+            # Reading needs no lock, and a store that cannot be written cannot be set up.
+            if not _schema_present(db):
+                raise StoreReadOnlyError(
+                    f"{db} holds no MLflow tables and cannot be written "
+                    f"({read_only_reason(db)}); point tracking.root at an existing store or "
+                    "a folder you can write"
+                )
+        elif db is not None:
             with _file_lock(db.with_name(db.name + ".lock")):
                 if not _schema_present(db):
                     if not db.exists() or db.stat().st_size == 0:
@@ -312,10 +429,13 @@ def client_for(settings: TrackingSettings) -> MlflowClient:
     """A client bound to ``settings.tracking_uri`` for both tracking and the registry.
 
     Binding the registry explicitly keeps a process-wide ``mlflow.set_registry_uri`` (or
-    ``MLFLOW_REGISTRY_URI``) from sending registrations elsewhere.
+    ``MLFLOW_REGISTRY_URI``) from sending registrations elsewhere. A local store this process
+    cannot write is read through a copy (:func:`reading_uri`); whatever writes calls
+    :func:`require_writable` first.
     """
     prepare_store(settings)
-    return MlflowClient(settings.tracking_uri, registry_uri=settings.tracking_uri)
+    uri = reading_uri(settings)
+    return MlflowClient(uri, registry_uri=uri)
 
 
 def _experiment_artifact_location(settings: TrackingSettings, name: str) -> str | None:
