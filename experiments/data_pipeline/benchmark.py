@@ -69,7 +69,8 @@ def main() -> None:
     npix = val_scenario.patch.npix
     print(
         f"scenario: {npix}x{npix} px of {val_scenario.patch.pixel_arcmin} arcmin, "
-        f"foreground {cfg.sky.foreground.name} (training source: {args.source}), batch {bs}, "
+        f"foreground {cfg.sky.foreground._target_.rsplit('.', 1)[-1]} "
+        f"(training source: {args.source}), batch {bs}, "
         f"mean net {cfg.model.mean._target_} depth={cfg.model.mean.get('depth')} "
         f"width={cfg.model.mean.get('width')}, torch threads {torch.get_num_threads()}"
     )
@@ -96,7 +97,10 @@ def main() -> None:
         f"{step_s * 1e3:.1f} ms -> draw/(draw+step) = {draw_s / (draw_s + step_s):.3f}"
     )
 
-    print(f"{'num_workers':>11} {'data share':>10} {'samples/s':>10} {'steps':>6}")
+    print(
+        f"{'num_workers':>11} {'data share':>10} {'samples/s':>10} {'steps':>6} "
+        f"{'step/fwd+bwd':>12}"
+    )
     for workers in args.workers:
         torch.manual_seed(0)
         module = MeanModule(
@@ -130,7 +134,7 @@ def main() -> None:
         ).fit(module, dm)
         print(
             f"{workers:>11d} {timer.data_share:>10.3f} {timer.samples_per_s:>10.1f} "
-            f"{timer.batches:>6d}"
+            f"{timer.batches:>6d} {timer.step_over_floor:>12.3f}"
         )
 
 

@@ -30,6 +30,7 @@ from skymoments.synthesis.wavelets import check_bank_args
 from skymoments.synthesis.wph import WPHConfig, WPHStatistics, loss_per_image
 
 BOUNDARIES = ("periodic", "mirror", "apodize")
+STARTS = ("gaussian", "coarse")
 # Edge-discontinuity ratio above which a training image is called non-periodic: the mean
 # squared jump across the wrap-around edges over the mean squared jump between interior
 # neighbours. A stationary periodic field gives ~1 (within ~30% for 64 pixels); a cut-out
@@ -70,6 +71,11 @@ class SynthesisSettings:
         Maps optimized together in one L-BFGS problem.
     boundary : {"periodic", "mirror", "apodize"}
         How the training image's edges are treated (:func:`prepare_target`).
+    start : {"gaussian", "coarse"}
+        ``gaussian``: L-BFGS starts from a Gaussian field with the target's power
+        (:func:`gaussian_start`). ``coarse``: the same field's low frequencies are first
+        synthesized at half resolution (``n_scales - 1`` scales) and put back under its
+        high frequencies (coarse-to-fine), when the map allows it (:func:`coarse_possible`).
     """
 
     n_images: int = 16
@@ -82,6 +88,7 @@ class SynthesisSettings:
     tol: float = 1e-3
     batch: int = 8
     boundary: str = "periodic"
+    start: str = "coarse"
 
     def wph_config(self) -> WPHConfig:
         return WPHConfig(
@@ -100,6 +107,10 @@ class SynthesisSettings:
                 raise ValueError(f"synthesis.{name} must be a positive integer, got {v!r}")
         if not (isinstance(self.tol, int | float) and 0 <= self.tol < 1):
             raise ValueError(f"synthesis.tol must be a number in [0, 1), got {self.tol!r}")
+        if self.start not in STARTS:
+            raise ValueError(
+                f"synthesis.start must be one of {', '.join(STARTS)}, got {self.start!r}"
+            )
         if self.boundary not in BOUNDARIES:
             raise ValueError(
                 f"synthesis.boundary must be one of {', '.join(BOUNDARIES)}, got {self.boundary!r}"
@@ -152,7 +163,10 @@ class SynthesisResult:
     loss : ndarray, shape (M,)
         Final ``||phi(x) - phi(x0)||^2`` per image (normalized moments, so dimensionless).
     loss_initial : ndarray, shape (M,)
-        The same at the Gaussian start.
+        The same at the Gaussian start (before the coarse stage, if any).
+    loss_start : ndarray, shape (M,)
+        The same where the full-resolution L-BFGS starts (after the coarse stage when
+        ``start="coarse"``, else equal to ``loss_initial``).
     iterations : list of int
         L-BFGS iterations run per batch.
     seconds : float
@@ -161,15 +175,20 @@ class SynthesisResult:
         Moment counts per family (:meth:`WPHStatistics.count`).
     history : list of float
         Mean loss per image at every check, all batches in turn.
+    coarse_iterations : list of int
+        L-BFGS iterations of the half-resolution stage per batch (empty without it); each
+        costs about a quarter of a full-resolution one.
     """
 
     images: np.ndarray
     loss: np.ndarray
     loss_initial: np.ndarray
+    loss_start: np.ndarray
     iterations: list[int]
     seconds: float
     n_moments: dict
     history: list[float] = field(default_factory=list)
+    coarse_iterations: list[int] = field(default_factory=list)
 
 
 def check_image(
@@ -242,7 +261,7 @@ def prepare_target(image: np.ndarray, boundary: str) -> np.ndarray:
     * ``periodic``: the image itself (warns when its edges look non-periodic).
     * ``mirror``: the image reflected into a (C, 2n, 2n) periodic map; the synthesis then
       runs at 2n and keeps the top-left n x n corner. A reflection flips the sign of U
-      (and of B) (REFERENCES.md, "Patch symmetries"), so channel 1 changes sign in the
+      (and of B) (Q + iU -> Q - iU under a reflection), so channel 1 changes sign in the
       reflected quadrants. U is then discontinuous across the mirror lines (a
       reflection-symmetric polarization field has U = 0 on them), an imprint that the
       synthesis learns too; ``apodize`` avoids it at the cost of a taper.
@@ -306,6 +325,100 @@ def gaussian_start(target: np.ndarray, n: int, rng: np.random.Generator) -> np.n
 ProgressFn = Callable[[dict], None]
 
 
+def _lbfgs(wph, goal, start, max_iter, tol, chunk, device, dtype, report=None):
+    """Minimize the moment loss from ``start`` (b, C, n, n) with one L-BFGS.
+
+    Returns ``(x, loss_initial, loss_final, iterations, history)`` with ``x`` an ndarray
+    and the losses per image (Tensors).
+    """
+    b = start.shape[0]
+    x = torch.tensor(start, dtype=dtype, device=device, requires_grad=True)
+    last = {}
+
+    def closure():
+        x.grad = None
+        per = []
+        for c0 in range(0, b, chunk):
+            li = loss_per_image(wph.moments(x[c0 : c0 + chunk]), goal)
+            li.sum().backward()
+            per.append(li.detach())
+        per = torch.cat(per)
+        last["per"] = per
+        return per.sum()
+
+    def losses():
+        with torch.no_grad():
+            return loss_per_image(
+                torch.cat([wph.moments(x[c : c + chunk]) for c in range(0, b, chunk)]), goal
+            )
+
+    opt = torch.optim.LBFGS(
+        [x],
+        lr=1.0,
+        max_iter=CHECK_EVERY,
+        history_size=20,
+        line_search_fn="strong_wolfe",
+        tolerance_grad=0.0,
+        tolerance_change=0.0,
+    )
+    l0 = losses()
+    prev = float(l0.mean())
+    done, history = 0, []
+    while done < max_iter:
+        step = min(CHECK_EVERY, max_iter - done)
+        opt.param_groups[0]["max_iter"] = step
+        opt.param_groups[0]["max_eval"] = int(step * 1.25) + 1
+        opt.step(closure)
+        done += step
+        cur = float(last["per"].mean())
+        if not math.isfinite(cur):
+            raise FloatingPointError(
+                "the synthesis loss became NaN or infinite; lower synthesis.n_scales or check "
+                "the training image"
+            )
+        history.append(cur)
+        if report is not None:
+            report(done, cur)
+        if prev > 0 and (prev - cur) / prev < tol:
+            break
+        prev = cur
+    return x.detach().cpu().numpy(), l0, losses(), done, history
+
+
+def coarse_possible(npix: int, n_scales: int) -> bool:
+    """Whether a coarse-to-fine start applies: a half-resolution map of at least 16 pixels
+    that still holds ``n_scales - 1 >= 2`` dyadic scales."""
+    return npix % 2 == 0 and npix // 2 >= 16 and n_scales >= 3 and 2 ** (n_scales - 1) <= npix // 2
+
+
+def _low_index(n: int, m: int) -> tuple[np.ndarray, np.ndarray]:
+    """Indices on an n-grid and on an m-grid (m < n) of the frequencies ``|k| < m / 2``."""
+    k = np.arange(-((m - 1) // 2), (m - 1) // 2 + 1)
+    return k % n, k % m
+
+
+def fourier_resample(x: np.ndarray, m: int) -> np.ndarray:
+    """The maps ``x`` (..., n, n) low-passed to the frequencies ``|k| < m / 2`` on each axis
+    and sampled on an m x m grid (Fourier truncation; pixel values keep their scale, the
+    m-grid's Nyquist row and column are zero)."""
+    n = x.shape[-1]
+    fine, crs = _low_index(n, m)
+    xf = np.fft.fft2(x)
+    out = np.zeros((*x.shape[:-2], m, m), dtype=complex)
+    out[..., crs[:, None], crs[None, :]] = xf[..., fine[:, None], fine[None, :]] * (m * m) / (n * n)
+    return np.fft.ifft2(out).real
+
+
+def replace_low_frequencies(x: np.ndarray, coarse: np.ndarray) -> np.ndarray:
+    """``x`` (..., n, n) with its frequencies ``|k| < m / 2`` taken from ``coarse`` (..., m, m)."""
+    n, m = x.shape[-1], coarse.shape[-1]
+    fine, crs = _low_index(n, m)
+    xf = np.fft.fft2(x)
+    cf = np.fft.fft2(coarse)
+    xf[..., fine[:, None], fine[None, :]] = cf[..., crs[:, None], crs[None, :]] * (n * n) / (m * m)
+    return np.fft.ifft2(xf).real
+
+
 def synthesize(
     image,
     settings: SynthesisSettings,
@@ -347,54 +460,49 @@ def synthesize(
     wph = WPHStatistics(t.shape[1:], settings.wph_config(), t.shape[0], t, device, dtype)
     goal = wph.moments(t).detach()[0]
     counts = wph.count()
+    coarse = None
+    if settings.start == "coarse" and coarse_possible(t.shape[-1], settings.n_scales):
+        tc = fourier_resample(t, t.shape[-1] // 2)
+        cfg_c = WPHConfig(
+            n_scales=settings.n_scales - 1,
+            n_orientations=settings.n_orientations,
+            scale_reach=min(settings.scale_reach, settings.n_scales - 2),
+            orientation_reach=settings.orientation_reach,
+            shift_reach=settings.shift_reach,
+        )
+        wph_c = WPHStatistics(tc.shape[1:], cfg_c, tc.shape[0], tc, device, dtype)
+        coarse = (tc, wph_c, wph_c.moments(tc).detach()[0])
     rng = np.random.default_rng(seed)
     n_batches = math.ceil(settings.n_images / settings.batch)
     images, losses, losses0, iters, history = [], [], [], [], []
+    coarse_iters, losses_start = [], []
     t0 = time.perf_counter()
     for ib in range(n_batches):
         b = min(settings.batch, settings.n_images - ib * settings.batch)
         start = gaussian_start(t, b, rng)
-        x = torch.tensor(start, dtype=dtype, device=device, requires_grad=True)
-        last = {}
-
-        def closure(x=x, last=last, b=b):
-            x.grad = None
-            per = []
-            for c0 in range(0, b, chunk):
-                li = loss_per_image(wph.moments(x[c0 : c0 + chunk]), goal)
-                li.sum().backward()
-                per.append(li.detach())
-            per = torch.cat(per)
-            last["per"] = per
-            return per.sum()
-
-        opt = torch.optim.LBFGS(
-            [x],
-            lr=1.0,
-            max_iter=CHECK_EVERY,
-            history_size=20,
-            line_search_fn="strong_wolfe",
-            tolerance_grad=0.0,
-            tolerance_change=0.0,
-        )
-        with torch.no_grad():
-            l0 = loss_per_image(
-                torch.cat([wph.moments(x[c : c + chunk]) for c in range(0, b, chunk)]), goal
-            )
-        prev = float(l0.mean())
-        done = 0
-        while done < settings.max_iter:
-            opt.max_iter = min(CHECK_EVERY, settings.max_iter - done)
-            opt.param_groups[0]["max_iter"] = opt.max_iter
-            opt.param_groups[0]["max_eval"] = int(opt.max_iter * 1.25) + 1
-            opt.step(closure)
-            done += opt.max_iter
-            cur = float(last["per"].mean())
-            if not math.isfinite(cur):
-                raise FloatingPointError(
-                    "the synthesis loss became NaN or infinite; lower synthesis.n_scales or check "
-                    "the training image"
+        lg = None
+        if coarse is not None:
+            with torch.no_grad():
+                xs = torch.tensor(start, dtype=dtype, device=device)
+                lg = torch.cat(
+                    [
+                        loss_per_image(wph.moments(xs[c : c + chunk]), goal)
+                        for c in range(0, b, chunk)
+                    ]
                 )
+            # Coarse-to-fine: match the moments of the half-resolution target from the
+            # low frequencies of the Gaussian start, then put the result back under the
+            # start's high frequencies. The full-resolution problem then starts with its
+            # large scales already non-Gaussian; a coarse iteration costs ~1/4 of a fine one.
+            tc, wph_c, goal_c = coarse
+            low = fourier_resample(start, tc.shape[-1])
+            xc, _, _, done_c, _ = _lbfgs(
+                wph_c, goal_c, low, settings.max_iter, settings.tol, chunk, device, dtype
+            )
+            start = replace_low_frequencies(start, xc)
+            coarse_iters.append(done_c)
+
+        def report(done, cur, ib=ib):
             history.append(cur)
             if progress is not None:
                 progress(
@@ -408,17 +516,15 @@ def synthesize(
                         "n_images": settings.n_images,
                     }
                 )
-            if prev > 0 and (prev - cur) / prev < settings.tol:
-                break
-            prev = cur
-        with torch.no_grad():
-            lf = loss_per_image(
-                torch.cat([wph.moments(x[c : c + chunk]) for c in range(0, b, chunk)]), goal
-            )
-        out = x.detach().cpu().numpy().astype(np.float64) * scale
+
+        x, l0, lf, done, _ = _lbfgs(
+            wph, goal, start, settings.max_iter, settings.tol, chunk, device, dtype, report
+        )
+        out = x.astype(np.float64) * scale
         images.append(out[..., :n, :n])
         losses.append(lf.cpu().numpy())
-        losses0.append(l0.cpu().numpy())
+        losses0.append((l0 if lg is None else lg).cpu().numpy())
+        losses_start.append(l0.cpu().numpy())
         iters.append(done)
     if progress is not None:
         progress(
@@ -436,8 +542,10 @@ def synthesize(
         images=np.concatenate(images),
         loss=np.concatenate(losses).astype(np.float64),
         loss_initial=np.concatenate(losses0).astype(np.float64),
+        loss_start=np.concatenate(losses_start).astype(np.float64),
         iterations=iters,
         seconds=time.perf_counter() - t0,
         n_moments=counts,
         history=history,
+        coarse_iterations=coarse_iters,
     )

@@ -278,6 +278,13 @@ class WPHStatistics:
                     self.neg_full.append(np.array([index[(-a, -b)] for a, b in tau.tolist()]))
         self.s11_kernel_half_all = torch.cat(self.s11_kernel_half, dim=1)
         self.s11_kernel_full_all = torch.cat(self.s11_kernel_full, dim=1)
+        # Real and imaginary parts of the tables, for real operands (power spectra): a
+        # real matrix product each is cheaper than casting the operand to complex.
+        self.s11_half_ri = (
+            self.s11_kernel_half_all.real.contiguous(),
+            self.s11_kernel_half_all.imag.contiguous(),
+        )
+        self.phase_half_ri = [(t.real.contiguous(), t.imag.contiguous()) for t in self.phase_half]
         # spectrum family: annulus indicator matrix (N, n_bins) divided by the mode count, and
         # the E/B rotation cos 2phi, sin 2phi of maps/eb.py (phi = atan2(w_y, w_x)).
         nb = self.config.spectrum_bins
@@ -398,16 +405,23 @@ class WPHStatistics:
         xflat = xf.reshape(b, c, n)
         # wave_power for all scales at once from the cross-spectra of x:
         # conj(W_a_hat) W_b_hat = conj(x_a_hat) x_b_hat psi_hat^2.
-        auto = (xflat.real**2 + xflat.imag**2).to(self.cdtype)  # (b, C, N)
-        s_auto = auto @ self.s11_kernel_half_all  # (b, C, sum_j T n_tau_j)
+        auto = xflat.real**2 + xflat.imag**2  # (b, C, N), real
+        s_auto = torch.complex(auto @ self.s11_half_ri[0], auto @ self.s11_half_ri[1])
         s_cross = None
         if c == 2:
             s_cross = (torch.conj(xflat[:, :1]) * xflat[:, 1:]) @ self.s11_kernel_full_all
         # Phase-harmonic maps of order 0, mean removed (only their covariances enter).
-        mod = w.abs()
+        # Real and imaginary parts as real tensors: the pixel-space work below is real
+        # arithmetic, several times faster on a CPU than the same complex operations
+        # (which also promote real operands to complex copies).
+        w_re, w_im = (t.contiguous() for t in torch.view_as_real(w).unbind(-1))
+        mod = torch.sqrt(w_re * w_re + w_im * w_im + _TINY)
         mod0 = mod - mod.mean(dim=(-2, -1), keepdim=True)
         m0f = torch.fft.fft2(mod0).reshape(b, c, cfg.n_scales, nt, n)
         wflat = wf.reshape(b, c, cfg.n_scales, nt, n)
+        # Per-scale views by unbind: its backward stacks the per-scale gradients once,
+        # where indexing scale by scale would zero-fill a full-size gradient per scale.
+        m0f_j, wflat_j = m0f.unbind(2), wflat.unbind(2)
         oh, of = 0, 0
         for j in range(cfg.n_scales):
             th, tf = len(self.shifts_half[j]), len(self.shifts_full[j])
@@ -419,9 +433,10 @@ class WPHStatistics:
                 out["wave_power"].append(blk / (n1[0, j] * n1[1, j])[None, None, :, None])
                 tags["wave_power"].append(("neg", j))
             oh, of = oh + nt * th, of + nt * tf
-            mj = m0f[:, :, j]  # (b, C, T, N)
-            p = (mj.real**2 + mj.imag**2).to(self.cdtype)
-            blk = p @ self.phase_half[j]
+            mj = m0f_j[j]  # (b, C, T, N)
+            p = mj.real**2 + mj.imag**2
+            ph_re, ph_im = self.phase_half_ri[j]
+            blk = torch.complex(p @ ph_re, p @ ph_im)
             out["envelope"].append(blk / (n0[:, j] ** 2)[None, :, :, None])
             tags["envelope"].append("inv")
             if c == 2:
@@ -429,7 +444,7 @@ class WPHStatistics:
                 out["envelope"].append(blk / (n0[0, j] * n0[1, j])[None, None, :, None])
                 tags["envelope"].append(("neg", j))
             # S01 for every ordered channel pair (a, b): conj(|W_a| hat) W_b hat.
-            prod = torch.conj(mj)[:, :, None] * wflat[:, None, :, j]  # (b, C, C, T, N)
+            prod = torch.conj(mj)[:, :, None] * wflat_j[j][:, None]  # (b, C, C, T, N)
             blk = prod @ self.phase_full[j]
             norm = n0[:, None, j] * n1[None, :, j]  # (C, C, T)
             out["envelope_wave"].append(blk / norm[None, :, :, :, None])
@@ -438,17 +453,22 @@ class WPHStatistics:
         # over pixels of all (channel, orientation) pairs at once (cheaper on a CPU than
         # gathering the few pairs we keep one by one).
         shp = (b, c, cfg.n_scales, nt, n)
-        modr = mod0.reshape(shp).permute(0, 2, 1, 3, 4).reshape(b, cfg.n_scales, c * nt, n)
-        wr = w.reshape(shp).permute(0, 2, 1, 3, 4).reshape(b, cfg.n_scales, c * nt, n)
+        js = cfg.n_scales
+        modr = mod0.reshape(shp).permute(0, 2, 1, 3, 4).reshape(b, js, c * nt, n)
+        # (b, J, 2 C T, N): real parts of all (channel, orientation) pairs, then imaginary.
+        wri = torch.stack([w_re.reshape(shp), w_im.reshape(shp)], dim=1)
+        wri = wri.permute(0, 3, 1, 2, 4, 5).reshape(b, js, 2 * c * nt, n)
         tt = np.arange(nt)
+        w_re, w_im = w_re.reshape(shp), w_im.reshape(shp)
+        inv_r = 1.0 / mod.reshape(shp)
+        h_re, h_im = w_re, w_im  # [W]^(2^dj), updated in the loop
         for dj in range(1, cfg.scale_reach + 1):
             if dj >= cfg.n_scales:
                 break
             jn = cfg.n_scales - dj
             # C01: <(|W_j1| - mean) W_j2> for all (a, t1) x (b, t2).
-            w2 = wr[:, dj:]
-            full_re = (modr[:, :jn] @ w2.real.transpose(-1, -2)).reshape(b, jn, c, nt, c, nt)
-            full_im = (modr[:, :jn] @ w2.imag.transpose(-1, -2)).reshape(b, jn, c, nt, c, nt)
+            full = (modr[:, :jn] @ wri[:, dj:].transpose(-1, -2)).reshape(b, jn, c, nt, 2, c, nt)
+            full_re, full_im = full[:, :, :, :, 0], full[:, :, :, :, 1]
             for dl in range(-cfg.orientation_reach, cfg.orientation_reach + 1):
                 t2 = (tt + dl) % nt
                 re = full_re[:, :, :, tt, :, t2]  # (T, b, jn, C, C)
@@ -461,16 +481,19 @@ class WPHStatistics:
                 norm = n0[:, None, :jn, :] * n1[None, :, dj:, :][..., t2]
                 out["xscale_envelope"].append(m / norm)
                 tags["xscale_envelope"].append("conj")
-            # xscale_phase: [W_j2]^(2^dj) has the frequency of W_j1 (arXiv:1810.12136, Sec. 4);
-            # the phase is raised to 2^dj by repeated squaring (complex pow is slow).
-            w2 = w[:, :, dj:]
-            r = w2.abs().clamp_min(_TINY)
-            ph = w2 / r
-            for _ in range(dj):
-                ph = ph * ph
-            harm = (r * ph).reshape(b, c, jn, nt, n)
-            w1 = w[:, :, :jn].reshape(b, c, jn, nt, n)
-            m = torch.einsum("bajtn,bcjtn->bacjt", torch.conj(w1), harm) / n
+            # xscale_phase: [W_j2]^(2^dj) has the frequency of W_j1 (arXiv:1810.12136,
+            # Sec. 4). [z]^(2k) = ([z]^k)^2 / |z|, so the harmonics of every order come from
+            # one squaring and one division of the whole stack per order (complex pow and
+            # the phase z / |z| are slower, and |z| is already known).
+            # Only scales j2 >= dj are needed from here on: the stack shrinks by one scale.
+            h_re, h_im, ir = h_re[:, :, 1:], h_im[:, :, 1:], inv_r[:, :, dj:]
+            h_re, h_im = (h_re * h_re - h_im * h_im) * ir, 2.0 * h_re * h_im * ir
+            # sum_u conj(W_j1)[W_j2]^k: real and imaginary parts from one real product
+            # over pixels of (re, im) x (re, im) for all channel pairs.
+            a1 = torch.stack([w_re[:, :, :jn], w_im[:, :, :jn]], dim=1)  # (b, 2, C, jn, T, N)
+            a2 = torch.stack([h_re, h_im], dim=1)
+            q = torch.einsum("bpajtn,bqcjtn->bpqacjt", a1, a2)
+            m = torch.complex(q[:, 0, 0] + q[:, 1, 1], q[:, 0, 1] - q[:, 1, 0]) / n
             norm = n1[:, None, :jn] * n1[None, :, dj:]
             out["xscale_phase"].append(m / norm)
             tags["xscale_phase"].append("conj")
