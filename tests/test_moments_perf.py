@@ -110,7 +110,7 @@ class _Consumed(pl.Callback):
         self.maps[-1] += int(batch[0].shape[0])
 
 
-def test_recorded_maps_seen_and_step_ratio_are_what_the_trainer_consumed(tmp_path):
+def test_recorded_maps_seen_and_step_ratio_are_what_the_trainer_consumed(tmp_path, capsys):
     consumed = _Consumed()
     cfg = _cfg(torch_threads="auto", num_workers="auto")
     sc = GaussianToyScenario(npix=8, amp_range=(0.5, 2.0))
@@ -125,3 +125,9 @@ def test_recorded_maps_seen_and_step_ratio_are_what_the_trainer_consumed(tmp_pat
         assert np.isfinite(ratio) and ratio > 0
     assert perf["perf/parallelism_measured"] == 1.0
     assert perf["perf/torch_threads"] >= 1 and perf["perf/num_workers"] in (0.0, 1.0)
+    # Output captured here is no terminal: no bar, one summary line per epoch and stage.
+    err = capsys.readouterr().err
+    lines = [ln for ln in err.splitlines() if ", epoch " in ln]
+    assert len(lines) == 3, err[-2000:]
+    assert "epoch 2/2: " in lines[1] and "val/loss_mean=" in lines[1] and lines[1].endswith(" s")
+    assert "\r" not in err  # no tqdm redraws
