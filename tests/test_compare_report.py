@@ -403,8 +403,8 @@ def test_command_composes_from_conf_and_refuses_a_sweep_id_read_as_a_number(swee
 
     overrides = [f"tracking.root={sweep['root']}", f"compare.out={tmp_path / 'c.html'}"]
     with initialize_config_dir(config_dir=str(conf_dir()), version_base="1.3"):
-        cfg = compose("config", overrides=[*overrides, "compare.sweep=123e4567"])
-        numeric = compose("config", overrides=[*overrides, "compare.sweep='123e4567'"])
+        cfg = compose("compare", overrides=[*overrides, "compare.sweep=123e4567"])
+        numeric = compose("compare", overrides=[*overrides, "compare.sweep='123e4567'"])
     assert cfg.compare.objective == "eval/mse_B"  # the study's objective by default
     with pytest.raises(ValueError, match="read by Hydra as the float"):
         compare(cfg)

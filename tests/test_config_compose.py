@@ -11,7 +11,7 @@ from skymoments.config import ConfigError, conf_dir, validate
 
 def _compose(*overrides: str):
     with initialize_config_dir(config_dir=str(conf_dir()), version_base="1.3"):
-        return compose("config", overrides=list(overrides))
+        return compose("run", overrides=list(overrides))
 
 
 @pytest.mark.parametrize("experiment", ["quickstart", "smoke"])
@@ -26,7 +26,7 @@ def test_quickstart_is_the_documented_scenario():
     # r and the foreground amplitude drawn from priors, training from one image + synthesis.
     cfg = validate(_compose("experiment=quickstart"))
     assert (cfg.patch.npix, cfg.patch.pixel_arcmin) == (64, 3.0)
-    assert cfg.sky.foreground.name == "filaments"
+    assert cfg.sky.foreground._target_ == "skymoments.sky.foregrounds.Filaments"
     assert cfg.prior.noise_uk_arcmin.dist == "fixed" and cfg.prior.noise_uk_arcmin.value == 0.0
     assert cfg.prior.r.dist != "fixed" and cfg.prior.a_fg.dist != "fixed"
     assert cfg.augment.source == "single_image" and cfg.augment.bank
@@ -39,8 +39,13 @@ def test_negative_pixel_size_names_the_key():
 
 
 def test_unknown_foreground_names_the_key_and_the_choices():
-    cfg = _compose("sky.foreground.name=nebula")
-    with pytest.raises(ConfigError, match=r"sky\.foreground\.name='nebula'.*filaments"):
+    # Foregrounds are chosen by _target_, like networks; only our own classes are built.
+    cfg = _compose("sky.foreground._target_=os.system")
+    with pytest.raises(ConfigError, match=r"_target_='os\.system'.*foregrounds\.Filaments"):
+        validate(cfg)
+    # The `name` of configs logged by earlier versions is still read, and checked.
+    cfg = _compose("+sky.foreground.name=nebula")
+    with pytest.raises(ConfigError, match=r"sky\.foreground\.name='nebula'.*Filaments"):
         validate(cfg)
 
 
@@ -71,3 +76,13 @@ def test_server_tracking_needs_a_uri():
     cfg = _compose("tracking=server")
     with pytest.raises(ConfigError, match=r"tracking\.uri"):
         validate(cfg)
+
+
+@pytest.mark.parametrize("command", ["run", "simulate", "synthesize", "evaluate", "predict"])
+def test_each_command_composes_only_its_own_nodes(command):
+    # One primary config per command (conf/<command>.yaml), composed from the shared groups.
+    with initialize_config_dir(config_dir=str(conf_dir()), version_base="1.3"):
+        cfg = compose(command)
+    others = {"predict", "compare", "evaluate", "settle"} - {command}
+    assert not others & set(cfg), sorted(others & set(cfg))
+    assert "tracking" in cfg and "name" in cfg

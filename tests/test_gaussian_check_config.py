@@ -31,7 +31,7 @@ def check():
 def test_composes_all_gaussian_with_fixed_amplitudes_and_oracle_foregrounds():
     cfg = validate(_compose())
     assert cfg.name == "gaussian_check"
-    assert cfg.sky.foreground.name == "gaussian"
+    assert cfg.sky.foreground._target_ == "skymoments.sky.foregrounds.GaussianPowerLaw"
     assert all(cfg.prior[k].dist == "fixed" for k in cfg.prior)
     # Training foregrounds come from the generator: the check is about the networks.
     assert cfg.augment.source == "generator"

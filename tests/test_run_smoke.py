@@ -82,12 +82,28 @@ def test_smoke_run_is_finished_with_named_metrics_and_artifacts(tmp_path):
     for key in NAMED_METRICS:
         assert key in run.data.metrics, key
     assert run.data.params["patch.npix"] == "32"
+    _check_params_are_the_runs_own(run)
     paths = _artifact_paths(client, run.info.run_id)
     for path in NAMED_ARTIFACTS:
         assert path in paths, (path, sorted(paths))
     _check_model_reloads(client, run, root, tmp_path)
     assert "mlflow ui --backend-store-uri" in proc.stdout
     assert run.info.run_id in proc.stdout
+
+
+# Nodes of the other commands' primary configs (conf/predict.yaml, compare.yaml, ...).
+OTHER_COMMANDS = ("predict", "compare", "evaluate", "settle")
+
+
+def _check_params_are_the_runs_own(run):
+    # `run` composes conf/run.yaml: its MLflow params (read back through the client) hold
+    # the study's keys and no key of another command's node.
+    params = run.data.params
+    foreign = sorted(k for k in params if k.split(".", 1)[0] in OTHER_COMMANDS)
+    assert not foreign, foreign
+    assert "???" not in params.values()
+    for key in ("model.mean._target_", "train.optimizer.lr", "sky.foreground._target_", "seed"):
+        assert key in params, key
 
 
 def _check_model_reloads(client, run, root, tmp_path):
@@ -120,14 +136,15 @@ def _check_model_reloads(client, run, root, tmp_path):
 
 @pytest.mark.slow
 def test_sweep_gives_parent_and_children_and_survives_a_failed_job(tmp_path):
-    # The second job's learning rate is refused by torch.optim at run time (after its run
-    # was opened): that job must be FAILED and the first must still finish.
+    # The second job's weight decay passes the config checks (they check the learning rate,
+    # not every optimizer keyword) and is refused by torch.optim.AdamW at run time, after its
+    # run was opened: that job must be FAILED and the first must still finish.
     root = tmp_path / "store"
     proc = _skymoments(
         "run",
         "-m",
         "experiment=smoke",
-        "train.optimizer.lr=0.002,-1.0",
+        "train.optimizer.weight_decay=0.0,-1.0",
         f"tracking.root={root}",
         cwd=tmp_path,
     )
@@ -138,5 +155,5 @@ def test_sweep_gives_parent_and_children_and_survives_a_failed_job(tmp_path):
     children = [r for r in runs if "mlflow.parentRunId" in r.data.tags]
     assert len(parents) == 1 and len(children) == 2
     assert {c.data.tags["mlflow.parentRunId"] for c in children} == {parents[0].info.run_id}
-    status = {c.data.params["train.optimizer.lr"]: c.info.status for c in children}
-    assert status == {"0.002": "FINISHED", "-1.0": "FAILED"}
+    status = {c.data.params["train.optimizer.weight_decay"]: c.info.status for c in children}
+    assert status == {"0.0": "FINISHED", "-1.0": "FAILED"}

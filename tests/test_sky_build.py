@@ -88,6 +88,21 @@ def test_foreground_override_and_model_keys():
     assert fil.length_arcmin == (5.0, 9.0)
 
 
+def test_foregrounds_are_chosen_by_target_among_our_own_classes_only():
+    target = "skymoments.sky.foregrounds.GaussianPowerLaw"
+    fg = foreground_from_config({"_target_": target, "amplitude_uk": 2.0, "bb_over_ee": 0.4})
+    assert isinstance(fg, GaussianPowerLaw) and fg.bb_over_ee == 0.4
+    # Nothing else is imported or called from a config (one read back from a store, say).
+    with pytest.raises(ValueError, match=r"_target_='os\.system' is not a known foreground"):
+        foreground_from_config({"_target_": "os.system"})
+    # The training bank is built in code from images, not from config keys.
+    for node in ({"_target_": "skymoments.sky.foregrounds.ImageBank"}, {"name": "image_bank"}):
+        with pytest.raises(ValueError, match=r"is the training bank of synthesized images"):
+            foreground_from_config(node)
+    with pytest.raises(ValueError, match=r"disagree; choose the foreground by _target_ alone"):
+        foreground_from_config({"_target_": target, "name": "filaments"})
+
+
 def test_exported_names_for_config_validation():
     assert set(FOREGROUND_NAMES) == {"filaments", "gaussian", "image_bank"}
     assert set(PRIOR_DISTS) == {"fixed", "uniform", "loguniform", "truncnormal"}
@@ -96,8 +111,8 @@ def test_exported_names_for_config_validation():
 @pytest.mark.parametrize(
     ("changes", "match"),
     [
-        ({"sky__foreground__name": "nebula"}, r"sky\.foreground.*filaments, gaussian"),
-        ({"sky__foreground__name": None}, r"sky\.foreground needs a name"),
+        ({"sky__foreground__name": "nebula"}, r"sky\.foreground\.name='nebula'.*Filaments"),
+        ({"sky__foreground__name": None}, r"sky\.foreground needs a _target_"),
         ({"sky__foreground__colour": "red"}, r"sky\.foreground.*colour"),
         ({"sky__foreground__amplitude_uk": -3.0}, r"sky\.foreground.*amplitude_uk"),
         ({"prior__r": {"dist": "uniform", "low": 0.3, "high": 0.1}}, r"prior\.r"),

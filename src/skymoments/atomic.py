@@ -49,3 +49,18 @@ def save_npz(path: str | os.PathLike, overwrite: bool = True, **arrays: np.ndarr
         with open(tmp, "wb") as fh:
             np.savez(fh, **arrays)
     return final
+
+
+def write_text(path: str | os.PathLike, text: str, overwrite: bool = True) -> Path:
+    """Write ``text`` (UTF-8) to ``path`` atomically; returns the final path."""
+    final = Path(path)
+    with atomic_path(final, overwrite=overwrite) as tmp:
+        tmp.write_text(text, encoding="utf-8")
+    return final
+
+
+def write_json(path: str | os.PathLike, data, overwrite: bool = True, **dump_kw) -> Path:
+    """``json.dump`` of ``data`` written atomically (``dump_kw`` as for ``json.dumps``)."""
+    import json
+
+    return write_text(path, json.dumps(data, **dump_kw), overwrite=overwrite)

@@ -55,9 +55,11 @@ EXPECTED_ERRORS = _expected_errors()
 def hydra_task(fn: Callable[[DictConfig], object]) -> Callable[[], object]:
     """Decorate ``fn(cfg)`` so that calling it parses ``sys.argv`` as Hydra overrides.
 
-    The config is composed from ``conf/config.yaml`` (found by :func:`conf_dir`), so the
-    installed tool runs from any folder. Working directories are not changed
-    (``hydra.job.chdir`` is false): relative paths mean the folder the user ran in.
+    The config is the command's own primary config, ``conf/<command>.yaml`` for the task
+    of ``skymoments.commands.<command>`` (found by :func:`conf_dir`), so a run holds only
+    the nodes its command reads and the installed tool runs from any folder. Working
+    directories are not changed (``hydra.job.chdir`` is false): relative paths mean the
+    folder the user ran in.
     """
 
     @functools.wraps(fn)
@@ -81,9 +83,11 @@ def hydra_task(fn: Callable[[DictConfig], object]) -> Callable[[], object]:
             print("skymoments: interrupted", file=sys.stderr)
             sys.exit(130)
 
+    config_name = fn.__module__.rsplit(".", 1)[-1]
+
     @functools.wraps(fn)
     def main() -> object:
-        return hydra.main(config_path=str(conf_dir()), config_name="config", version_base="1.3")(
+        return hydra.main(config_path=str(conf_dir()), config_name=config_name, version_base="1.3")(
             task
         )()
 

@@ -34,7 +34,7 @@ def compare(cfg: DictConfig):
     if node is None:
         raise ValueError(
             "the config has no 'compare' node; add `- compare: default` to the defaults of "
-            "conf/config.yaml"
+            "conf/compare.yaml"
         )
     sweep = node.get("sweep")
     if isinstance(sweep, (float, bool)):

@@ -24,7 +24,7 @@ def print_summary(result, tracking_uri: str, experiment_id=None) -> None:
     from rich.table import Table
     from rich.text import Text
 
-    from skymoments.study.evaluation import SUMMARY_KEYS
+    from skymoments.metric_contract import SUMMARY_KEYS
     from skymoments.tracking import view_hint
 
     def fmt(d: dict, k: str) -> str:
@@ -54,11 +54,6 @@ def _main(cfg: DictConfig) -> None:
     from skymoments.tracking import TrackingUnavailableError, run_job_safely, settings_from
 
     def job(cfg: DictConfig) -> None:
-        if "evaluate" not in cfg:
-            raise ValueError(
-                "the config has no evaluate node; add `- optional evaluate: default` to "
-                "conf/config.yaml (or pass +evaluate=default)"
-            )
         overrides = scenario_overrides(HydraConfig.get().overrides.task)
         result = evaluate_run(cfg, overrides)
         print_summary(result, settings_from(cfg.tracking).tracking_uri)

@@ -13,7 +13,7 @@ from skymoments.config import validate
 
 @hydra_task
 def main(cfg: DictConfig) -> float | None:
-    from skymoments.study.evaluation import SUMMARY_KEYS
+    from skymoments.metric_contract import SUMMARY_KEYS
     from skymoments.study.training import objective, run_study
     from skymoments.tracking import print_run_summary, run_job_safely, tracked_run
 

@@ -56,7 +56,7 @@ def main(cfg: DictConfig) -> None:
     from skymoments.maps import FlatPatch
     from skymoments.study.simulation import quicklook_figure, simulate
 
-    validate(cfg)
+    validate(cfg, command="simulate")
     parts = simulate(cfg)
     patch = FlatPatch(int(cfg.patch.npix), float(cfg.patch.pixel_arcmin))
     out = _output_dir(cfg)

@@ -9,21 +9,12 @@ from dataclasses import dataclass, field
 from skymoments.compare.objective import Objective, RankedRun, rank_runs
 from skymoments.compare.params import VaryingParam, varying_params
 from skymoments.compare.select import Selection
+from skymoments.metric_contract import KEY_METRICS as _CONTRACT_KEY_METRICS
 
 __all__ = ["KEY_METRICS", "Comparison", "build_comparison", "format_value"]
 
-# (label, metric stem, ideal value or None): the stem gets _E / _B appended. Ideals from the
-# calibration contract (ARCHITECTURE.md): z ~ N(0, 1), Gaussian coverage at 1 and 2 sigma
-# (68.27 %, 95.45 %), KS distance 0; a Wiener ratio of 1 means no gain over the baseline.
-KEY_METRICS: tuple[tuple[str, str, float | None], ...] = (
-    ("z mean", "calib/z_mean", 0.0),
-    ("z std", "calib/z_std", 1.0),
-    ("cov68", "calib/cov68", 0.6827),
-    ("cov95", "calib/cov95", 0.9545),
-    ("KS", "calib/ks", 0.0),
-    ("MSE", "eval/mse", None),
-    ("MSE/Wiener", "eval/mse_ratio_wiener", 1.0),
-)
+# (label, metric stem, ideal value or None): the stem gets _E / _B appended.
+KEY_METRICS = _CONTRACT_KEY_METRICS
 
 
 def format_value(value: float | str | None, digits: int = 4) -> str:

@@ -1,15 +1,8 @@
 """The objective that ranks runs, and the ranking itself.
 
 An objective is a metric name (``eval/mse_B``, ``calib/ks_E``, ...) or
-``calibration_score``: the mean over the components E and B of the per-component score of
-:func:`skymoments.calibration.metrics.component_score`,
-
-    score_C = |z_mean_C| + |z_std_C - 1| + mean_k |cov_k,C - nominal_k|,
-    k in 68.27 / 95.45 / 99.73 %,
-
-which is 0 for a calibrated posterior and grows with each departure. It is read from the
-logged ``calib/score_E`` and ``calib/score_B`` when present, else recomputed from the logged
-z mean, z std and coverages (the same formula, so the two agree).
+``calibration_score``; names, directions and ``calibration_score`` itself are the metric
+contract's (:mod:`skymoments.metric_contract`).
 
 Only FINISHED runs are ranked. A run of another status (FAILED, KILLED, RUNNING) is listed
 with its status and no rank, and so is a finished run that lacks the objective's metric.
@@ -18,11 +11,15 @@ with its status and no rank, and so is a finished run that lacks the objective's
 from __future__ import annotations
 
 import difflib
-import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 
-from skymoments.calibration.metrics import COMPONENTS, component_score
+from skymoments.metric_contract import (
+    CALIBRATION_SCORE,
+    calibration_score,
+    objective_value,
+)
+from skymoments.metric_contract import direction as better_direction
 from skymoments.tracking import RunRecord
 
 __all__ = [
@@ -34,43 +31,7 @@ __all__ = [
     "resolve_objective",
 ]
 
-CALIBRATION_SCORE = "calibration_score"
 DIRECTIONS = ("min", "max", "auto")
-# Metrics where larger is better; every other metric in the contract (mse, ratios, ks,
-# scores) is better smaller. Metrics with an ideal inside the range (z_std, coverages) are
-# not good objectives on their own: calibration_score folds them in.
-_LARGER_IS_BETTER = ("eval/snr_gain_",)
-
-
-def calibration_score(metrics: Mapping[str, float]) -> float | None:
-    """``calibration_score`` of one run: mean over E, B of ``calib/score_C`` (0 is ideal).
-
-    Parameters
-    ----------
-    metrics : mapping of str to float
-        The run's metrics.
-
-    Returns
-    -------
-    score : float or None
-        None when neither ``calib/score_C`` nor the z/coverage metrics behind it are there
-        for both components.
-    """
-    scores = []
-    for c in COMPONENTS:
-        value = metrics.get(f"calib/score_{c}")
-        if value is None:
-            parts = [f"calib/z_mean_{c}", f"calib/z_std_{c}"]
-            covs = [f"calib/cov68_{c}", f"calib/cov95_{c}", f"calib/cov997_{c}"]
-            if not all(k in metrics for k in parts + covs):
-                return None
-            value = component_score(
-                metrics[parts[0]],
-                metrics[parts[1]],
-                {k.split("/")[1].rsplit("_", 1)[0]: metrics[k] for k in covs},
-            )
-        scores.append(float(value))
-    return float(sum(scores) / len(scores))
 
 
 @dataclass(frozen=True)
@@ -90,13 +51,7 @@ class Objective:
 
     def value(self, metrics: Mapping[str, float]) -> float | None:
         """The objective of a run with these metrics; None when it cannot be computed."""
-        if self.name == CALIBRATION_SCORE:
-            value = calibration_score(metrics)
-        else:
-            value = metrics.get(self.name)
-        if value is None or not math.isfinite(float(value)):
-            return None
-        return float(value)
+        return objective_value(self.name, metrics)
 
     @property
     def description(self) -> str:
@@ -128,7 +83,7 @@ def resolve_objective(name: str, direction: str = "auto") -> Objective:
     if direction not in DIRECTIONS:
         raise ValueError(f"compare.direction must be one of {DIRECTIONS}, got {direction!r}")
     if direction == "auto":
-        direction = "max" if name.startswith(_LARGER_IS_BETTER) else "min"
+        direction = better_direction(name)
     return Objective(name, direction)
 
 

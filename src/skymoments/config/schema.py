@@ -1,9 +1,11 @@
 """Typed schemas for the composed config, and the checks Hydra's composition cannot make.
 
-Types are checked by merging each node onto a structured (dataclass) schema, which
-names the full key of any value of the wrong type; ranges and names (a negative pixel
-size, an unknown foreground) are checked here with messages that name the key and say
-how to fix it. ``validate`` runs before any work starts.
+The schemas (dataclasses) are registered once in Hydra's ConfigStore, group ``schema``;
+the YAML files under ``conf/`` hold values only. Types are checked by merging each node
+onto its registered schema, which names the full key of any value of the wrong type;
+ranges and names (a negative pixel size, an unknown foreground, a patch the network cannot
+pool) are checked here with messages that name the key and say how to fix it. ``validate``
+runs before any work starts, on every node the command's config holds.
 """
 
 from __future__ import annotations
@@ -11,8 +13,11 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
+from hydra.core.config_store import ConfigStore
 from omegaconf import DictConfig, OmegaConf
 from omegaconf.errors import OmegaConfBaseException
+
+from skymoments.sky.cmb import CMBCosmology
 
 
 class ConfigError(ValueError):
@@ -35,17 +40,59 @@ class PriorSchema:
     std: float | None = None
 
 
+@dataclass
+class EvalSchema:
+    wiener: bool = True
+    fg_bins: int = 4
+
+
+@dataclass
+class TrainSchema:
+    batch_size: int = 32
+    steps_per_epoch: int = 25
+    n_val: int = 256
+    val_batch_size: int = 64
+    max_epochs_mean: int = 10
+    max_epochs_var: int = 6
+    patience: int = 4
+    # An integer, or "auto": measured at start-up (skymoments.moments.perf).
+    num_workers: Any = 0
+    torch_threads: Any = None
+    fit_scalers_n: int = 256
+    gradient_clip_val: float | None = 1.0
+    variance_loss: str = "gaussian_nll"
+    variance_bounds: bool = True
+    optimizer: Any = None
+    scheduler: Any = None
+
+
 PRIOR_KEYS = ("r", "a_lens", "a_fg", "noise_uk_arcmin")
 TRACKING_KINDS = ("local", "server")
+# The typed schemas, registered once in Hydra's ConfigStore (group "schema").
+SCHEMAS: dict[str, type] = {
+    "patch": PatchSchema,
+    # The cosmology's own dataclass is the schema of sky.cmb: its fields type the node.
+    "cmb": CMBCosmology,
+    "prior": PriorSchema,
+    "eval": EvalSchema,
+    "train": TrainSchema,
+}
+for _name, _schema in SCHEMAS.items():
+    ConfigStore.instance().store(group="schema", name=_name, node=_schema)
 
 
-def _typed(node: Any, schema: type, key: str) -> DictConfig:
-    """Merge ``node`` onto ``schema`` so a wrongly typed value fails with its full key."""
-    base = OmegaConf.structured(schema)
+def _schema(name: str) -> DictConfig:
+    return ConfigStore.instance().load(f"schema/{name}.yaml").node
+
+
+def _typed(node: Any, schema: str, key: str) -> DictConfig:
+    """Merge ``node`` onto the registered ``schema`` so a wrong type fails with its full key."""
     try:
-        return OmegaConf.merge(base, node)
+        return OmegaConf.merge(_schema(schema), node)
     except OmegaConfBaseException as err:
-        raise ConfigError(f"invalid value under '{key}': {err}") from None
+        # One line: omegaconf's message spreads the key and the value over several.
+        text = " ".join(str(err).split())
+        raise ConfigError(f"invalid value under '{key}': {text}") from None
 
 
 def _positive(value: Any, key: str, hint: str) -> None:
@@ -54,7 +101,7 @@ def _positive(value: Any, key: str, hint: str) -> None:
 
 
 def _check_patch(cfg: DictConfig) -> None:
-    patch = _typed(cfg.patch, PatchSchema, "patch")
+    patch = _typed(cfg.patch, "patch", "patch")
     _positive(patch.pixel_arcmin, "patch.pixel_arcmin", "set patch.pixel_arcmin=<arcmin per pixel>")
     if patch.npix < 4:
         raise ConfigError(f"patch.npix must be an integer >= 4, got {patch.npix}")
@@ -67,30 +114,24 @@ def _check_patch(cfg: DictConfig) -> None:
 
 
 def _check_sky(cfg: DictConfig) -> None:
-    from skymoments.sky.cmb import CMBCosmology
-    from skymoments.sky.foregrounds import FOREGROUNDS
-
     sky = cfg.sky
     # The cosmology's own dataclass is the schema: its fields type the node and its
     # checks name the key (sky.cmb.H0 ...).
-    _typed(sky.cmb, CMBCosmology, "sky.cmb")
+    _typed(sky.cmb, "cmb", "sky.cmb")
     try:
         CMBCosmology.from_mapping(OmegaConf.to_container(sky.cmb, resolve=True))
     except (TypeError, ValueError) as err:
         raise ConfigError(f"sky.cmb: {err}") from None
-    fg = sky.foreground
-    name = fg.get("name") if isinstance(fg, DictConfig) else None
-    if name not in FOREGROUNDS:
-        known = ", ".join(sorted(FOREGROUNDS))
-        raise ConfigError(
-            f"sky.foreground.name={name!r} is not a known foreground; choose one of: {known}"
-        )
+    from skymoments.sky.build import foreground_from_config
+
+    try:
+        # Building it checks the _target_, its keywords and their values.
+        foreground_from_config(sky.foreground)
+    except ValueError as err:
+        raise ConfigError(str(err)) from None
     beam = sky.get("beam_fwhm_arcmin", 0.0)
     if beam is None or float(beam) < 0:
         raise ConfigError(f"sky.beam_fwhm_arcmin must be >= 0 arcmin, got {beam!r}")
-    for key in ("amplitude_uk",):
-        if key in fg:
-            _positive(fg[key], f"sky.foreground.{key}", "give the foreground amplitude in uK")
 
 
 def _check_prior(cfg: DictConfig) -> None:
@@ -99,7 +140,7 @@ def _check_prior(cfg: DictConfig) -> None:
     for key in PRIOR_KEYS:
         if key not in cfg.prior:
             raise ConfigError(f"prior.{key} is missing; every scenario needs a prior on {key}")
-        node = _typed(cfg.prior[key], PriorSchema, f"prior.{key}")
+        node = _typed(cfg.prior[key], "prior", f"prior.{key}")
         try:
             prior_from_config(OmegaConf.to_container(node))
         except ValueError as err:
@@ -123,19 +164,78 @@ def _check_model(cfg: DictConfig) -> None:
                 raise ConfigError(
                     f"model.{stage}.{key} must be a positive integer, got {node[key]!r}"
                 )
+        pool = _pool_factor(node)
+        npix = cfg.patch.npix if "patch" in cfg else None
+        if pool > 1 and isinstance(npix, int) and npix % pool:
+            raise ConfigError(
+                f"patch.npix={npix} cannot be pooled by model.{stage} ({node._target_} of "
+                f"depth {node.depth} halves the side {node.depth} times, so it needs a "
+                f"multiple of {pool}); choose patch.npix={_nearest(npix, pool)} or a smaller "
+                f"model.{stage}.depth"
+            )
     pos = cfg.model.get("positivity", "softplus")
     if pos not in ("softplus", "logvar"):
         raise ConfigError(f"model.positivity={pos!r}; choose softplus or logvar")
 
 
+# Networks that pool: the side is halved ``depth`` times (skymoments.nets.UNet.forward
+# refuses a side that is not a multiple of 2**depth).
+POOLING_NETS = ("skymoments.nets.UNet", "skymoments.nets.unet.UNet")
+
+
+def _pool_factor(node: DictConfig) -> int:
+    """The number the patch side must be a multiple of for this network (1: any)."""
+    if node.get("_target_") in POOLING_NETS and isinstance(node.get("depth"), int):
+        return 2 ** int(node.depth)
+    return 1
+
+
+def _nearest(npix: int, step: int) -> int:
+    return max(step, step * round(npix / step))
+
+
 def _check_train(cfg: DictConfig) -> None:
     if "train" not in cfg:
         return
+    train = _typed(cfg.train, "train", "train")
     for key in ("batch_size", "steps_per_epoch", "n_val", "max_epochs_mean", "max_epochs_var"):
-        if key in cfg.train:
-            value = cfg.train[key]
-            if not (isinstance(value, int) and value > 0):
-                raise ConfigError(f"train.{key} must be a positive integer, got {value!r}")
+        if not train[key] > 0:
+            raise ConfigError(f"train.{key} must be a positive integer, got {train[key]!r}")
+    opt = cfg.train.get("optimizer")
+    lr = opt.get("lr") if isinstance(opt, DictConfig) else None
+    if lr is not None and (
+        isinstance(lr, bool) or not isinstance(lr, int | float) or not float(lr) > 0
+    ):
+        raise ConfigError(
+            f"train.optimizer.lr must be a positive number, got {lr!r}; e.g. "
+            "train.optimizer.lr=2e-3"
+        )
+
+
+def _check_eval(cfg: DictConfig) -> None:
+    if "eval" not in cfg:
+        return
+    node = _typed(cfg.eval, "eval", "eval")
+    if node.fg_bins < 1:
+        raise ConfigError(
+            f"eval.fg_bins must be a positive integer (bins of foreground amplitude the "
+            f"calibration is split into), got {node.fg_bins}; e.g. eval.fg_bins=4"
+        )
+
+
+def _check_synthesis(cfg: DictConfig, command: str | None) -> None:
+    """The synthesis settings, where this command synthesizes (``synthesize``, a bank)."""
+    if "synthesis" not in cfg:
+        return
+    uses_bank = "augment" in cfg and bool(cfg.augment.get("bank"))
+    if command != "synthesis" and not (command == "run" and uses_bank):
+        return
+    from skymoments.synthesis.pipeline import settings_from_config
+
+    try:
+        settings_from_config(cfg.synthesis)
+    except (TypeError, ValueError) as err:
+        raise ConfigError(str(err)) from None
 
 
 def _check_tracking(cfg: DictConfig) -> None:
@@ -153,7 +253,18 @@ def _check_tracking(cfg: DictConfig) -> None:
             )
 
 
-CHECKS = (_check_patch, _check_sky, _check_prior, _check_model, _check_train, _check_tracking)
+# Each check runs on its node where the command's config holds it.
+CHECKS = {
+    "patch": _check_patch,
+    "sky": _check_sky,
+    "prior": _check_prior,
+    "model": _check_model,
+    "train": _check_train,
+    "eval": _check_eval,
+    "tracking": _check_tracking,
+}
+# Commands that draw from the study's scenario: they need patch, sky and prior.
+STUDY_COMMANDS = ("run", "simulate", "synthesis", "evaluate")
 
 
 # Nodes that belong to one subcommand: their mandatory keys are checked only by it.
@@ -172,7 +283,7 @@ def validate(cfg: DictConfig, command: str | None = None) -> DictConfig:
 
     Returns the same config, so ``cfg = validate(cfg)`` reads naturally.
     """
-    for key in ("patch", "sky", "prior"):
+    for key in ("patch", "sky", "prior") if command in STUDY_COMMANDS else ():
         if key not in cfg:
             raise ConfigError(f"the config has no '{key}' node; compose it from conf/config.yaml")
     missing = {
@@ -186,6 +297,8 @@ def validate(cfg: DictConfig, command: str | None = None) -> DictConfig:
             + ", ".join(sorted(missing))
             + " (give them as key=value overrides)"
         )
-    for check in CHECKS:
-        check(cfg)
+    for key, check in CHECKS.items():
+        if key in cfg:
+            check(cfg)
+    _check_synthesis(cfg, command)
     return cfg

@@ -5,7 +5,7 @@ Expected shape (``conf/`` follows it)::
     patch: {npix: 64, pixel_arcmin: 3.0}
     sky:
       cmb: {H0: 67.5, ombh2: 0.022, omch2: 0.122, As: 2.0e-9, ns: 0.965, tau: 0.06, lmax: 5000}
-      foreground: {name: filaments, amplitude_uk: 3.0, ...model-specific keys}
+      foreground: {_target_: skymoments.sky.foregrounds.Filaments, amplitude_uk: 3.0, ...}
       beam_fwhm_arcmin: 0.0
     prior:
       r: {dist: uniform, low: 0.0, high: 0.2}
@@ -23,11 +23,12 @@ from collections.abc import Mapping
 
 from skymoments.maps.geometry import FlatPatch
 from skymoments.sky.cmb import CMBCosmology, cmb_spectra
-from skymoments.sky.foregrounds import FOREGROUNDS, make_foreground
+from skymoments.sky.foregrounds import FOREGROUNDS, Filaments, GaussianPowerLaw, make_foreground
 from skymoments.sky.priors import PRIOR_DISTS, prior_from_config
 from skymoments.sky.scenario import PARAM_NAMES, Scenario
 
 __all__ = [
+    "CONFIGURABLE_FOREGROUNDS",
     "FOREGROUNDS",
     "FOREGROUND_NAMES",
     "PARAM_NAMES",
@@ -39,6 +40,13 @@ __all__ = [
 ]
 
 FOREGROUND_NAMES: tuple[str, ...] = tuple(sorted(FOREGROUNDS))
+# The foregrounds a config can choose, by ``_target_`` (the idiom that chooses networks).
+# Only these classes are ever built from a config, so a config read back from a store
+# (``evaluate``) cannot make this code import or call anything else. ``ImageBank`` is not
+# among them: it holds images made in code (the training bank), not keys of a config.
+CONFIGURABLE_FOREGROUNDS: dict[str, type] = {
+    f"{cls.__module__}.{cls.__name__}": cls for cls in (Filaments, GaussianPowerLaw)
+}
 
 
 def _plain(node):
@@ -77,29 +85,60 @@ def patch_from_config(node) -> FlatPatch:
     return FlatPatch(npix, float(data["pixel_arcmin"]))
 
 
+def _foreground_class(data: dict) -> type:
+    """The class ``{_target_: ...}`` (or, in configs of earlier runs, ``{name: ...}``) names."""
+    choices = ", ".join(f"_target_={t}" for t in CONFIGURABLE_FOREGROUNDS)
+    target, name = data.pop("_target_", None), data.pop("name", None)
+    if target is None and name is None:
+        raise ValueError(f"sky.foreground needs a _target_; choose one of: {choices}")
+    found = []
+    for key, value in (("_target_", target), ("name", name)):
+        if value is None:
+            continue
+        if key == "_target_":
+            cls = CONFIGURABLE_FOREGROUNDS.get(str(value))
+        else:
+            cls = FOREGROUNDS.get(str(value))
+            cls = cls if cls in CONFIGURABLE_FOREGROUNDS.values() else None
+        if cls is None:
+            bank = "ImageBank" in str(value) or value == "image_bank"
+            why = (
+                "is the training bank of synthesized images, built in code, not a sky model"
+                if bank
+                else "is not a known foreground"
+            )
+            raise ValueError(f"sky.foreground.{key}={value!r} {why}; choose one of: {choices}")
+        found.append(cls)
+    if len(set(found)) > 1:
+        raise ValueError(
+            f"sky.foreground.name={name!r} and sky.foreground._target_={target} disagree; "
+            "choose the foreground by _target_ alone"
+        )
+    return found[0]
+
+
 def foreground_from_config(node):
-    """A foreground from ``{name: ..., **model keywords}`` (e.g. ``cfg.sky.foreground``).
+    """A foreground from ``{_target_: <class>, **model keywords}`` (e.g. ``cfg.sky.foreground``).
+
+    ``_target_`` is one of :data:`CONFIGURABLE_FOREGROUNDS`; the ``{name: ...}`` form of
+    configs logged by earlier versions is read too.
 
     Raises
     ------
     ValueError
-        Unknown name (listing the known ones) or keyword, or an invalid value; the
+        Unknown target (listing the known ones) or keyword, or an invalid value; the
         message names ``sky.foreground``.
     """
     data = _plain(node)
     if not isinstance(data, Mapping):
-        raise ValueError(f"sky.foreground must be a mapping with a 'name', got {data!r}")
+        raise ValueError(f"sky.foreground must be a mapping with a _target_, got {data!r}")
     data = dict(data)
-    name = data.pop("name", None)
-    if name is None:
-        raise ValueError(
-            f"sky.foreground needs a name; choose one of: {', '.join(FOREGROUND_NAMES)}"
-        )
+    cls = _foreground_class(data)
     if "length_arcmin" in data and isinstance(data["length_arcmin"], list):
         data["length_arcmin"] = tuple(data["length_arcmin"])
     try:
-        return make_foreground(name, **data)
-    except ValueError as err:
+        return make_foreground(cls.name, **data)
+    except (TypeError, ValueError) as err:
         raise ValueError(f"sky.foreground: {err}") from None
 
 

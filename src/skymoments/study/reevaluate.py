@@ -7,7 +7,7 @@ a fresh evaluation set is drawn from the new scenario, and it is judged by the s
 logged as a child run of the training run (tag ``mlflow.parentRunId``), in the same
 experiment.
 
-What may change: ``sky`` (e.g. ``sky=gaussian``, ``sky.foreground.name=gaussian``),
+What may change: ``sky`` (e.g. ``sky=gaussian``, ``sky.foreground.amplitude_uk=6``),
 ``prior`` (``prior.a_fg.low=2 prior.a_fg.high=4``, ``prior.noise_uk_arcmin.value=5``),
 ``eval`` (baseline settings) and ``patch`` only as far as the geometry stays the training
 one (a network's posterior is defined on the patch it was trained on). Training choices
@@ -119,21 +119,9 @@ def scenario_overrides(task_overrides) -> list[str]:
     return [o.lstrip("+") for o in map(str, task_overrides) if _root(o) not in COMMAND_ROOTS]
 
 
-def _group_node(group: str, option: str) -> DictConfig:
-    path = conf_dir() / group / f"{option}.yaml"
-    if not path.is_file():
-        known = sorted(p.stem for p in (conf_dir() / group).glob("*.yaml"))
-        raise ValueError(f"{group}={option}: no such option; choose one of: {', '.join(known)}")
-    node = OmegaConf.load(path)
-    if "defaults" in node:
-        raise ValueError(
-            f"{group}={option} has a defaults list, which evaluate cannot compose on top of a "
-            "run's config; give its keys one by one instead"
-        )
-    return node
-
-
-def apply_overrides(train_cfg: DictConfig, overrides: list[str]) -> DictConfig:
+def apply_overrides(
+    train_cfg: DictConfig, overrides: list[str], composed: DictConfig | None = None
+) -> DictConfig:
     """The training config with scenario overrides applied on top (a new config).
 
     Parameters
@@ -143,12 +131,15 @@ def apply_overrides(train_cfg: DictConfig, overrides: list[str]) -> DictConfig:
     overrides : list of str
         Hydra-style ``key=value`` (also ``+key=value``, ``++key=value``) and group choices
         (``sky=gaussian``), for keys under ``patch``, ``sky``, ``prior`` and ``eval``.
+    composed : DictConfig, optional
+        This command's config as Hydra composed it with the same overrides: a group choice
+        takes its node from there (Hydra composed the option and its defaults list).
 
     Raises
     ------
     ValueError
         An override of anything else (the model is the trained one), a deletion, a sweep, or
-        an unknown group option.
+        a group choice without ``composed`` (an unknown option fails in Hydra's composition).
     """
     from hydra.core.override_parser.overrides_parser import OverridesParser
     from hydra.errors import HydraException
@@ -177,7 +168,11 @@ def apply_overrides(train_cfg: DictConfig, overrides: list[str]) -> DictConfig:
             raise ValueError(f"{o.input_line}: package overrides (@) are not supported")
         value = o.value()
         if "." not in key and _is_group(key) and isinstance(value, str):
-            cfg[key] = _group_node(key, value)
+            if composed is None or key not in composed:
+                raise ValueError(
+                    f"{o.input_line}: a group choice needs the config Hydra composed with it"
+                )
+            cfg[key] = OmegaConf.to_container(composed[key], resolve=True)
         else:
             OmegaConf.update(cfg, key, value, merge=False, force_add=True)
     return cfg
@@ -199,7 +194,7 @@ def _training_record(settings, run_id: str):
     """The training run's record, with clear errors for every way it can be missing."""
     from skymoments.tracking import get_run
 
-    if run_id is None or str(run_id).strip() in ("", "???"):
+    if run_id is None or not str(run_id).strip():
         raise ValueError("evaluate.run_id is not set; give run_id=<32-character MLflow run id>")
     run_id = str(run_id).strip()
     if not _RUN_ID.match(run_id):
@@ -295,18 +290,19 @@ def evaluate_run(
     overrides = list(overrides or [])
     ev = cfg.evaluate
     settings = settings_from(cfg.tracking)
-    record = _training_record(settings, ev.run_id)
+    # A run_id left unset (``???`` in conf/evaluate/default.yaml) reads as None.
+    record = _training_record(settings, None if OmegaConf.is_missing(ev, "run_id") else ev.run_id)
     run_id = record.run_id
     out = Path(out) if out is not None else job_dir()
     out.mkdir(parents=True, exist_ok=True)
     with tempfile.TemporaryDirectory() as tmp:
         train_cfg = _training_config(settings, run_id, Path(tmp))
-    eval_cfg = apply_overrides(train_cfg, overrides)
+    eval_cfg = apply_overrides(train_cfg, overrides, composed=cfg)
     _check_geometry(train_cfg, eval_cfg, run_id)
     # The evaluated config records where it was logged and how it was asked for.
     eval_cfg.tracking = OmegaConf.to_container(cfg.tracking, resolve=True)
     eval_cfg.evaluate = OmegaConf.to_container(ev, resolve=True)
-    validate(eval_cfg)
+    validate(eval_cfg, command="evaluate")
 
     n = int(ev.n) if ev.get("n") is not None else int(train_cfg.train.n_val)
     seed = int(ev.seed) if ev.get("seed") is not None else int(train_cfg.seed)

@@ -6,16 +6,15 @@ driven with any ``launch`` function, and read without Hydra's plugin machinery.
 
 from __future__ import annotations
 
-import json
 import logging
 import math
 import os
-import tempfile
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from skymoments.atomic import write_json
 from skymoments.sweeps.space import SearchSpace
 
 __all__ = [
@@ -259,9 +258,4 @@ def write_results(result: SearchResult, folder: str | os.PathLike, **extra: Any)
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     data = {**extra, **result.__dict__}
-    target = folder / RESULTS_FILE
-    fd, tmp = tempfile.mkstemp(dir=folder, prefix=RESULTS_FILE + ".", suffix=".tmp")
-    with os.fdopen(fd, "w") as handle:
-        json.dump(data, handle, indent=1, default=str)
-    os.replace(tmp, target)
-    return target
+    return write_json(folder / RESULTS_FILE, data, indent=1, default=str)

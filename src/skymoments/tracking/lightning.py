@@ -80,7 +80,7 @@ class RunLogger(Logger):
         """Write ``metrics`` at ``step`` into the run (skips NaN/inf with a warning)."""
         if self._run_id is None:
             return
-        from skymoments.tracking.run import write_metrics
+        from skymoments.tracking.metrics import write_metrics
 
         named = {f"{self._prefix}{key}": value for key, value in metrics.items()}
         write_metrics(self._settings, self._run_id, named, step=step, stacklevel=3)

@@ -16,11 +16,12 @@ from __future__ import annotations
 import json
 import logging
 import os
-import tempfile
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, TypeVar
+
+from skymoments.atomic import write_json
 
 __all__ = [
     "PARENT_FILE",
@@ -115,11 +116,7 @@ def write_parent(record: ParentRecord) -> Path:
     """Write ``record`` to ``<sweep_dir>/.skymoments-parent-run`` atomically and export it."""
     folder = Path(record.sweep_dir)
     folder.mkdir(parents=True, exist_ok=True)
-    target = folder / PARENT_FILE
-    fd, tmp = tempfile.mkstemp(dir=folder, prefix=PARENT_FILE + ".", suffix=".tmp")
-    with os.fdopen(fd, "w") as handle:
-        json.dump(record.__dict__, handle, indent=1)
-    os.replace(tmp, target)
+    target = write_json(folder / PARENT_FILE, record.__dict__, indent=1)
     os.environ[ENV_PARENT_RUN_ID] = record.run_id
     os.environ[ENV_SWEEP_DIR] = record.sweep_dir
     os.environ[ENV_SWEEP_ID] = record.sweep_id
