@@ -128,6 +128,7 @@ def main() -> None:
     ap.add_argument("--before", default="ed15cfe", help="git revision of the former wph.py")
     ap.add_argument("--reps", type=int, default=15)
     ap.add_argument("--seed", type=int, default=2024)
+    ap.add_argument("--parts", nargs="+", type=int, default=[1, 2, 3], help="which of 1 2 3")
     args = ap.parse_args()
     torch.set_num_threads(args.threads)
     patch = FlatPatch(64, 3.0)
@@ -139,8 +140,17 @@ def main() -> None:
         f"threads {args.threads}; torch {torch.__version__}"
     )
 
-    # 1. Evaluation over the FFT floor, before and after, interleaved.
     t = target / target.std()
+    if 1 in args.parts or 2 in args.parts:
+        compare_speed(args, target, t, defaults, patch)
+    if 3 in args.parts and args.bank:
+        bank(args, target)
+    print(f"load average at end: {os.getloadavg()[0]:.2f}")
+
+
+def compare_speed(args, target, t, defaults, patch) -> None:
+    """Parts 1 and 2 of the module docstring."""
+    # 1. Evaluation over the FFT floor, before and after, interleaved.
     start = np.repeat(t[None], 2, 0) + 0.3 * np.random.default_rng(0).standard_normal((2, *t.shape))
     fns = {"fft": fft_floor(start.shape, defaults)}
     before = load_before(args.before)
@@ -196,18 +206,28 @@ def main() -> None:
     if cost["coarse"]:
         print(f"  iterations ratio coarse/gaussian: {cost['coarse'] / cost['gaussian']:.2f}")
 
-    # 3. A bank with the defaults.
+
+def bank(args, target) -> None:
+    """Part 3: a bank with the defaults."""
     if args.bank:
         s = SynthesisSettings(n_images=args.bank)
         t0 = time.perf_counter()
-        res = synthesize(target, s, seed=3)
+        seen = set()
+
+        def progress(d):
+            if d["batch"] > 0 and d["batch"] not in seen:  # a batch has finished
+                seen.add(d["batch"])
+                done = d["batch"] * s.batch
+                sec = time.perf_counter() - t0
+                print(f"  {done} maps in {sec:.0f} s ({sec / done:.1f} s per map)", flush=True)
+
+        res = synthesize(target, s, seed=3, progress=progress)
         sec = time.perf_counter() - t0
         print(
             f"bank of {args.bank} 64x64 Q/U maps (defaults, start={s.start}): {sec:.0f} s, "
             f"{sec / args.bank:.2f} s per map, iterations per batch {res.iterations}, "
             f"mean final loss {np.mean(res.loss):.3f}"
         )
-    print(f"load average at end: {os.getloadavg()[0]:.2f}")
 
 
 if __name__ == "__main__":
