@@ -1,6 +1,6 @@
 """The per-mode Wiener filter against dense Gaussian conditioning, and its calibration.
 
-References: Gaussian conditioning (REFERENCES.md "Wiener filter"; Elsner & Wandelt 2013,
+References: Gaussian conditioning (Elsner & Wandelt 2013,
 arXiv:1210.4931) computed densely with numpy.linalg; the normal distribution
 (scipy.stats.norm) for z-scores and coverage; scipy.stats.kstest for PIT uniformity.
 """

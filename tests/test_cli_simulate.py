@@ -30,7 +30,7 @@ def test_simulate_quickstart_writes_the_documented_npz(tmp_path):
             assert f[key].shape == (8, 2, 64, 64), key
         assert f["params"].shape[0] == 8
         assert int(f["npix"]) == 64 and float(f["pixel_arcmin"]) == 3.0
-        # The data are the sum of their parts (ARCHITECTURE.md data flow; no beam here).
+        # The data are the sum of their parts (signal + foreground + noise; no beam here).
         np.testing.assert_allclose(
             f["data_qu"], f["signal_qu"] + f["foreground_qu"] + f["noise_qu"], atol=1e-9
         )

@@ -66,7 +66,7 @@ def test_e_only_field_has_b_at_round_off(npix):
 def test_plane_wave_follows_the_stated_convention(m):
     # A single E plane wave of multipole l: Q = cos(2 phi) E, U = sin(2 phi) E with
     # phi = atan2(ly, lx), x along columns, y along rows (maps/eb.py docstring; the
-    # standard flat-sky relation, REFERENCES.md "Flat-sky E/B").
+    # standard flat-sky relation, Zaldarriaga & Seljak 1997, PRD 55:1830, from memory).
     npix = 32
     patch = FlatPatch(npix, 2.0)
     mx, my = m

@@ -239,8 +239,8 @@ def _cross(fa, fb, patch, edges):
 
 @pytest.mark.parametrize("lat", [0.0, 60.0])
 def test_patch_e_and_b_agree_in_sign_with_healpy(eb_sky128, lat):
-    # The Q/U convention on the patch against healpy (ARCHITECTURE.md: "test it against
-    # healpy on the sphere"): E and B computed on the patch from the cut Q/U correlate
+    # The Q/U convention on the patch against healpy on the sphere (healpy's map2alm
+    # E and B as the reference): E and B computed on the patch from the cut Q/U correlate
     # with healpy's own E and B maps (alm2map of a_E and a_B, cut as scalars) with
     # coefficient close to +1. A U sign error would mix E and B (r ~ 0), a frame of the
     # wrong handedness would flip B (r ~ -1). What is left is the E/B mixing of the
@@ -329,7 +329,7 @@ def test_patch_to_healpix_covers_the_gnomonic_square():
 @pytest.mark.slow
 @pytest.mark.parametrize("lat", [0.0, 60.0])
 def test_e_only_sky_gives_an_e_only_patch(e_only256, lat):
-    # REFERENCES.md: measured E-to-B leakage 0.8% with a Hann window at the equator and
+    # Measured on this project: E-to-B leakage 0.8% with a Hann window at the equator and
     # with the alm rotation. Bound asked: BB / EE < 2% per bin for 300 < l < 1500; at
     # nside 256 (lmax 767, to keep the suite fast) the band is 300 < l < 750. A Hann
     # window on a flat E-only field alone leaks ~0.6% here (pseudo-C_l E/B mixing), so

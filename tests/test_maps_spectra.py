@@ -3,7 +3,7 @@
 Realizations are made here, independently of the package: white noise ``w`` of unit
 variance per pixel has ``<|fft2(w)_k|^2> = N`` (Parseval, numpy's unnormalized fft2), so
 ``x = ifft2(fft2(w) * sqrt(C(|l_k|) / Omega_pix))`` has ``<|X_k|^2> = C N / Omega_pix``, the
-normalization of REFERENCES.md ("numpy fft2 normalisation"). The filter is even in k, so
+normalization of numpy's unnormalized forward fft2 (Parseval). The filter is even in k, so
 x is real.
 
 Exact statistics: modes k and -k of a real field are one complex Gaussian, so a bin of

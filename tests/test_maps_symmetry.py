@@ -44,8 +44,9 @@ def backend(x, kind):
 @pytest.mark.parametrize("g", range(N_SYMMETRIES))
 def test_symmetries_commute_with_eb(g, npix, kind):
     # THE key property: transforming Q/U then taking E/B equals taking E/B then
-    # transforming E/B, for all 8 elements of D4 (spin-2 rules, REFERENCES.md "Patch
-    # symmetries"), on even (Nyquist lines, see maps/eb.py) and odd patches.
+    # transforming E/B, for all 8 elements of D4 (spin-2 rules: Q + iU -> e^{2i alpha}(Q + iU)
+    # under a rotation, Q - iU under a reflection),
+    # on even (Nyquist lines, see maps/eb.py) and odd patches.
     patch = FlatPatch(npix, 2.0)
     qu = make_qu(npix, seed=10 + g)
     lhs = qu_to_eb(to_numpy(apply_symmetry_qu(backend(qu, kind), g)), patch)
@@ -107,7 +108,7 @@ def test_named_operations_are_group_elements():
     np.testing.assert_array_equal(flip_eb(qu, -1), apply_symmetry_eb(qu, 4))
     np.testing.assert_array_equal(transpose_eb(qu), apply_symmetry_eb(qu, 5))
     np.testing.assert_array_equal(flip_eb(qu, -2), apply_symmetry_eb(qu, 6))
-    # Stated rules on arrays (REFERENCES.md, "Patch symmetries").
+    # Stated rules on arrays, from the spin-2 rules above (checked numerically here).
     np.testing.assert_array_equal(
         rot90_qu(qu)[..., 0, :, :], -np.rot90(qu[..., 0, :, :], axes=(-2, -1))
     )

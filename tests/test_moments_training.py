@@ -222,7 +222,7 @@ class _WienerRatio(pl.Callback):
 def test_mean_network_approaches_the_wiener_filter_on_a_gaussian_sky():
     # All-Gaussian CMB, foreground and noise with fixed amplitudes: the exact posterior
     # mean is the per-mode Wiener filter S/(S+N) d in Fourier E/B, with N the foreground
-    # plus noise power (standard Gaussian conditioning, REFERENCES.md; Elsner & Wandelt
+    # plus noise power (standard Gaussian conditioning; Elsner & Wandelt
     # 2013, arXiv:1210.4931). The squared loss makes the network regress that mean
     # (Jeffrey & Wandelt 2020, arXiv:2011.05991): its MSE ratio to the Wiener filter must
     # fall towards 1 as training runs.

@@ -41,7 +41,7 @@ INTERRUPTED_EXPERIMENT = "smoke_interrupted"
 REGISTERED = "skymoments-smoke-team"
 SEEDS = ("0", "1")
 
-# Metric names from the contract in ARCHITECTURE.md that every smoke run logs.
+# Metric names from the contract (DEVELOPERS.md, Metric names) that every smoke run logs.
 CONTRACT_METRICS = (
     "calib/z_mean_E", "calib/z_std_E", "calib/cov68_E", "calib/cov95_E", "calib/cov997_E",
     "calib/z_mean_B", "calib/z_std_B", "calib/cov68_B", "calib/cov95_B", "calib/cov997_B",

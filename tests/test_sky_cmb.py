@@ -142,7 +142,7 @@ def test_cache_returns_exactly_what_camb_returned(camb_pair):
 
 @pytest.mark.slow
 def test_camb_reference_peaks(camb_pair):
-    # REFERENCES.md "Check values" (camb 2.0.5, H0 67.5, ombh2 0.022, omch2 0.122, As 2e-9,
+    # Values computed with camb 2.0.5 (H0 67.5, ombh2 0.022, omch2 0.122, As 2e-9,
     # ns 0.965): tensor BB at r = 0.01 peaks at D_ell ~ 6.2e-4 uK^2 near ell ~ 88; lensed BB
     # peaks at D_ell ~ 0.093 uK^2 near ell ~ 880. Tolerances: the references carry two
     # significant figures (+-0.8% and +-0.5% from rounding); our tensor tilt is fixed at

@@ -33,7 +33,7 @@ def _bin_stats(power2d: np.ndarray, patch: FlatPatch, edges: np.ndarray):
 
 
 def test_mode_power_matches_the_fft2_normalization():
-    # DEVELOPERS.md / REFERENCES.md: <|X_k|^2> = C_ell N / Omega_pix for X = fft2(x).
+    # DEVELOPERS.md: <|X_k|^2> = C_ell N / Omega_pix for X = fft2(x) (numpy's unnormalized fft2).
     # Averaged over all modes with C > 0 and all maps, |X_k|^2 / (C N / Omega) is a mean
     # of exponentials (one per independent Hermitian pair) with mean 1 and sd 1, so its
     # standard error is 1 / sqrt(n_pairs); 4.5 of them bound a false alarm to ~1e-5.

@@ -140,7 +140,7 @@ def test_non_periodic_image_warns_and_boundary_options():
     # Q is continuous across the seams; U is not (a reflection flips its sign, so a
     # reflection-symmetric field needs U = 0 on the mirror line; synthesize.py docstring).
     assert mirrored.shape == (2, 32, 32) and edge_discontinuity(mirrored[:1]) < 2.0
-    # Reflection changes the sign of U (REFERENCES.md, "Patch symmetries").
+    # Reflection changes the sign of U (spin 2: Q + iU -> Q - iU under a reflection).
     np.testing.assert_array_equal(mirrored[1, :16, 16:], -cut[1, :, ::-1])
     np.testing.assert_array_equal(mirrored[0, 16:, :16], cut[0, ::-1, :])
     assert apod.shape == cut.shape

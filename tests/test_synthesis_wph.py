@@ -114,7 +114,7 @@ def test_translation_invariance(wph_and_map):
 def test_rotation_by_180_degrees(wph_and_map):
     # x(u) -> x(-u) maps W(u) to conj(W(-u)) because psi_hat is real, so every moment goes
     # to conj(M(-tau)) (wph.py docstring). Q and U keep their signs under a 180-degree
-    # rotation (spin 2: e^{2i pi} = 1; REFERENCES.md, "Patch symmetries").
+    # rotation (spin 2: Q + iU gains e^{2i alpha} = e^{2i pi} = 1).
     wph, x = wph_and_map
     rot = np.roll(x[:, ::-1, ::-1], (1, 1), axis=(-2, -1))  # u -> -u modulo n
     s, sr = wph.forward(x), wph.forward(rot)

@@ -128,35 +128,40 @@ def direction(name: str) -> str:
     return "max" if spec is not None and spec.better == "max" else "min"
 
 
-def calibration_score(metrics: Mapping[str, float]) -> float | None:
+def calibration_score(metrics: Mapping[str, float], prefix: str = "") -> float | None:
     """``calibration_score`` of one run: mean over E, B of ``calib/score_C`` (0 is ideal).
 
+    ``prefix`` reads the metrics of one evaluation set (``"valid/"``: ``valid/calib/...``).
     Returns None when neither ``calib/score_C`` nor the z/coverage metrics behind it are
     there for both components.
     """
     scores = []
     for c in COMPONENTS:
-        value = metrics.get(f"calib/score_{c}")
+        value = metrics.get(f"{prefix}calib/score_{c}")
         if value is None:
-            parts = [f"calib/z_mean_{c}", f"calib/z_std_{c}"]
+            parts = [f"{prefix}calib/z_mean_{c}", f"{prefix}calib/z_std_{c}"]
             covs = [f"calib/cov68_{c}", f"calib/cov95_{c}", f"calib/cov997_{c}"]
-            if not all(k in metrics for k in parts + covs):
+            if not all(k in metrics for k in parts + [prefix + k for k in covs]):
                 return None
             value = component_score(
                 metrics[parts[0]],
                 metrics[parts[1]],
-                {k.split("/")[1].rsplit("_", 1)[0]: metrics[k] for k in covs},
+                {k.split("/")[1].rsplit("_", 1)[0]: metrics[prefix + k] for k in covs},
             )
         scores.append(float(value))
     return float(sum(scores) / len(scores))
 
 
-def objective_value(name: str, metrics: Mapping[str, float]) -> float | None:
+def objective_value(name: str, metrics: Mapping[str, float], prefix: str = "") -> float | None:
     """The objective ``name`` (a metric name or ``calibration_score``) of a run's metrics.
 
-    None when it cannot be computed or is not finite.
+    ``prefix`` reads it on one evaluation set (``"valid/"``). None when it cannot be
+    computed or is not finite.
     """
-    value = calibration_score(metrics) if name == CALIBRATION_SCORE else metrics.get(name)
+    if name == CALIBRATION_SCORE:
+        value = calibration_score(metrics, prefix)
+    else:
+        value = metrics.get(prefix + name)
     if value is None or not math.isfinite(float(value)):
         return None
     return float(value)

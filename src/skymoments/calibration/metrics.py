@@ -5,12 +5,12 @@ read it as a Gaussian marginal per pixel: the central credible interval at level
 ``mean +- norm.ppf((1 + p) / 2) * std``. Under that reading and a correct posterior,
 ``z = (truth - mean) / std`` is N(0, 1) over validation draws, the fraction of pixels with
 ``|z| < 1, 2, 3`` is 68.27 / 95.45 / 99.73 % and the PIT values ``norm.cdf(z)`` are
-uniform (REFERENCES.md, "Calibration"; Talts et al., arXiv:1804.06788, for the PIT idea).
+uniform (the normal distribution; Talts et al., arXiv:1804.06788, for the PIT idea).
 A moment network gives only mean and variance, so a non-Gaussian true posterior can be
 mis-covered at some levels even when z has mean 0 and std 1: the coverage curve over 20
 levels shows that.
 
-Metric names follow ARCHITECTURE.md (``calib/z_mean_C``, ``calib/cov68_C``, ...).
+Metric names: DEVELOPERS.md, Metric names (``calib/z_mean_C``, ``calib/cov68_C``, ...).
 """
 
 from __future__ import annotations

@@ -1,4 +1,4 @@
-"""Per-multipole figures of a posterior mean X against the truth Y (REFERENCES.md).
+"""Per-multipole figures of a posterior mean X against the truth Y (common practice).
 
 * cross-correlation ``r_ell = C^XY / sqrt(C^XX C^YY)``;
 * transfer function ``T_ell = C^XY / C^YY``;

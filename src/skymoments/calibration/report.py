@@ -1,7 +1,7 @@
 """One call that judges a posterior: metrics, baselines, figures; and posterior files.
 
 :func:`evaluate_posterior` gathers everything the calibration package measures on a
-validation set into an :class:`EvalReport` whose metric names follow ARCHITECTURE.md.
+validation set into an :class:`EvalReport` (metric names: DEVELOPERS.md, Metric names).
 The interval reading is Gaussian-marginal (see ``calibration.metrics``); ``REPORT_NOTE``
 is the sentence a report shows beside its coverage numbers.
 
@@ -13,13 +13,13 @@ from __future__ import annotations
 
 import json
 import os
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 from astropy.io import fits
 
+from skymoments.atomic import atomic_path as _atomic
 from skymoments.calibration import plots
 from skymoments.calibration.metrics import (
     COMPONENTS,
@@ -257,28 +257,6 @@ def evaluate_posterior(
                 arrays["std_over_exact"], side_deg=side_deg
             )
     return rep
-
-
-class _atomic:
-    """Context manager: a temp path beside ``dest``, moved onto it with os.replace on success."""
-
-    def __init__(self, dest: Path):
-        self.dest = Path(dest)
-
-    def __enter__(self) -> Path:
-        self.dest.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(
-            prefix=f".{self.dest.name}.", suffix=".part", dir=self.dest.parent
-        )
-        os.close(fd)
-        self.tmp = Path(tmp)
-        return self.tmp
-
-    def __exit__(self, exc_type, exc, tb) -> None:
-        if exc_type is None:
-            os.replace(self.tmp, self.dest)
-        elif self.tmp.exists():
-            self.tmp.unlink()
 
 
 def _fits_value(v):

@@ -7,7 +7,7 @@ the contamination ``m`` independent, E and B uncorrelated, and
     <|t_k|^2> = S(k) npix^2 / Omega_pix,   <|m_k|^2> = N(k) npix^2 / Omega_pix
 
 (the fft2 normalization of DEVELOPERS.md; ``S``, ``N`` in uK^2, the C_ell convention).
-Then per mode (REFERENCES.md, "Wiener filter"; Elsner & Wandelt 2013, arXiv:1210.4931):
+Then per mode (Gaussian conditioning; Elsner & Wandelt 2013, arXiv:1210.4931):
 
     posterior mean      = S / (S + N) e
     posterior variance  = S N / (S + N)        [C_ell units, uK^2]

@@ -7,8 +7,6 @@ comparison (its :class:`~skymoments.tracking.TrackingUnavailableError` propagate
 
 from __future__ import annotations
 
-import contextlib
-import os
 import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -18,6 +16,7 @@ import numpy as np
 
 from skymoments.calibration.metrics import COMPONENTS
 from skymoments.tracking import TrackingUnavailableError, download_artifact
+from skymoments.tracking.settings import quiet_artifact_downloads
 
 __all__ = [
     "ARRAYS_PATH",
@@ -67,24 +66,9 @@ class CalibrationCurves:
         return self.z_edges is not None and len(self.z_density) == len(COMPONENTS)
 
 
-@contextlib.contextmanager
-def _quiet_downloads():
-    """Turn MLflow's download progress bars off for a block (they clutter the table)."""
-    key = "MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR"
-    saved = os.environ.get(key)
-    os.environ[key] = "false"
-    try:
-        yield
-    finally:
-        if saved is None:
-            os.environ.pop(key, None)
-        else:
-            os.environ[key] = saved
-
-
 def _download(tracking: Any, run_id: str, path: str, dst: Path) -> tuple[Path | None, str]:
     try:
-        with _quiet_downloads():
+        with quiet_artifact_downloads():
             local = download_artifact(tracking, run_id, path, dst)
     except TrackingUnavailableError:
         raise

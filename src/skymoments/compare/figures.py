@@ -184,7 +184,7 @@ def z_hist_figure(comp: Comparison, curves: Mapping[str, CalibrationCurves]) -> 
                 lw=1.2,
                 label=f"#{e.rank} {e.run.name or e.run.run_id[:8]}",
             )
-        # The reference a calibrated posterior's z follows (ARCHITECTURE.md: z ~ N(0, 1)).
+        # A calibrated posterior's z = (truth - mean) / std follows N(0, 1).
         ax.plot(grid, stats.norm.pdf(grid), color="black", ls="--", lw=1.2, label="N(0, 1)")
         ax.set_title(f"z histogram, {c}", fontsize=9)
         ax.set_xlabel("z = (truth - mean) / std", fontsize=8)

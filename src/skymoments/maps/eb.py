@@ -11,8 +11,8 @@ and the inverse ``Q = E cos 2phi - B sin 2phi``, ``U = E sin 2phi + B cos 2phi``
 ``l = 0`` mode carries no E/B and is set to zero in both directions; so is the Nyquist
 corner mode of an even-sized patch, and the Nyquist row and column use ``sin 2phi = 0``
 (see ``_angles`` for why: it keeps the transform unitary and commuting with the patch
-symmetries of ``maps.symmetry``). This is the standard flat-sky relation (e.g.
-REFERENCES.md, "Flat-sky E/B"). Q and U are measured from the x axis towards the y
+symmetries of ``maps.symmetry``). This is the standard flat-sky relation (Zaldarriaga &
+Seljak 1997, Phys. Rev. D 55:1830; from memory). Q and U are measured from the x axis towards the y
 axis. On a patch cut by ``maps.healpix.cut_patch`` (rows towards north, columns towards
 east, the patch seen from outside the sphere) these E and B agree in sign with healpy's E
 and B (tested in tests/test_maps_healpix.py); at the patch centre the patch (Q, U) are

@@ -2,7 +2,7 @@
 
 Normalization: for a periodic map with FFT ``X_k = fft2(x)``, a Gaussian realization
 of ``C_ell`` has ``<|X_k|^2> = C_ell * N / Omega_pix`` with ``N = npix**2`` the pixel count
-and ``Omega_pix`` the pixel solid angle (REFERENCES.md, "numpy fft2 normalisation"). We
+and ``Omega_pix`` the pixel solid angle (numpy's unnormalized forward fft2). We
 invert that, and divide by ``mean(w**2)`` when an apodization window ``w`` is applied
 (the standard pseudo-C_ell correction for the lost power; mode coupling is not undone).
 """

@@ -7,8 +7,9 @@ it works on any device and inside autograd).
 
 Sign rules. Under an active rotation of the sky by ``alpha``, ``Q + iU`` at the rotated
 point is ``exp(2i alpha) (Q + iU)``; under a reflection ``Q + iU -> Q - iU`` (the
-polarization angle, measured from x towards y, changes sign) (REFERENCES.md, "Patch
-symmetries"). On our axes ``numpy.rot90(m, k=1, axes=(-2, -1))`` sends the point (x, y)
+polarization angle, measured from x towards y, changes sign): Q + iU is a spin-2
+quantity (Zaldarriaga & Seljak 1997, Phys. Rev. D 55:1830; from memory).
+On our axes ``numpy.rot90(m, k=1, axes=(-2, -1))`` sends the point (x, y)
 to (y, -x): it is a rotation by **-90 degrees** (clockwise when the patch is shown with
 y upwards, ``origin="lower"``; counter-clockwise only in a display with row 0 on top,
 where y points down). Since ``exp(+-i pi) = -1`` the sign rule is the same either way:

@@ -102,7 +102,7 @@ class PredictOptions:
         if node is None:
             raise ValueError(
                 "the config has no 'predict' node; add `- predict: default` to the defaults of "
-                "conf/config.yaml (or pass +predict=default)"
+                "conf/predict.yaml (or pass +predict=default)"
             )
         if isinstance(node, DictConfig):
             # Keys come with their full path when the node sits inside a config.

@@ -9,7 +9,7 @@ tensor amplitude (linear perturbation theory), any ``(r, A_lens)`` is then
 
 The tensor tilt is held fixed (``nt``, default 0) rather than tied to ``r`` by CAMB's
 default inflation-consistency relation ``nt = -r/8``, which would make the r = 1 spectrum
-a poor template for small r. The CAMB call follows REFERENCES.md ("A CAMB call"):
+a poor template for small r. The CAMB call is the one CAMB's Python documentation gives:
 ``camb.set_params(..., WantTensors=True)`` then ``get_cmb_power_spectra(pars,
 CMB_unit='muK', raw_cl=True)`` with columns TT, EE, BB, TE.
 
@@ -235,7 +235,7 @@ def _run_camb(cosmo: CMBCosmology) -> dict[str, np.ndarray]:
         pars, CMB_unit="muK", raw_cl=True, lmax=cosmo.lmax, spectra=("lensed_scalar", "tensor")
     )
     lens, tens = cls["lensed_scalar"], cls["tensor"]
-    # Columns: TT, EE, BB, TE (REFERENCES.md, "A CAMB call").
+    # Columns: TT, EE, BB, TE (CAMB's get_cmb_power_spectra with raw_cl=True).
     out = {
         "ee_lensed": lens[:, 1],
         "bb_lensed": lens[:, 2],

@@ -1,6 +1,6 @@
 """Gaussian random E/B (and Q/U) maps with given power spectra on a flat periodic patch.
 
-Normalization (DEVELOPERS.md, REFERENCES.md "numpy fft2 normalisation"): a map ``x`` of
+Normalization (DEVELOPERS.md; numpy's fft2 is unnormalized forward): a map ``x`` of
 ``N = npix**2`` pixels with spectrum ``C_ell`` has ``<|X_k|^2> = C_ell N / Omega_pix`` for
 ``X = fft2(x)``. We draw real white noise ``w`` with unit variance per pixel, so that
 ``W = fft2(w)`` has ``<|W_k|^2> = sum_x <w_x^2> = N`` for every k (Parseval), and set

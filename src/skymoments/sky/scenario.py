@@ -227,7 +227,8 @@ class Scenario:
         """True when every prior is fixed and the foreground is Gaussian.
 
         Then signal, foreground and noise are independent stationary Gaussian fields, and
-        the Wiener filter is the exact posterior (REFERENCES.md, "Wiener filter").
+        the Wiener filter is the exact posterior (Gaussian conditioning; Elsner & Wandelt 2013,
+        arXiv:1210.4931).
         """
         fixed = all(isinstance(p, Fixed) for p in self.priors.values())
         return fixed and bool(getattr(self.foreground, "is_gaussian", False))

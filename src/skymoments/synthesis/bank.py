@@ -5,7 +5,7 @@ determines its content (the training image's content hash, the synthesis setting
 including the number of images M, and the seed):
 
 * ``bank-<key>.npz`` with the array ``images``, shape (M, C, n, n), in the training
-  image's units (ARCHITECTURE.md contract);
+  image's units (uK: DEVELOPERS.md, Conventions);
 * ``bank-<key>.json`` beside it: the settings, seed, final loss per image, the source's
   content hash, the package version, timings, and the SHA-256 of the ``.npz`` file.
 

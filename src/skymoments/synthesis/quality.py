@@ -2,7 +2,7 @@
 functionals (the checks of Regaldo-Saint Blancard et al., arXiv:2208.03538, abstract, and
 Allys et al. 2020, arXiv:2006.06298, Sec. 5).
 
-Metric definitions (the names are a contract, see ARCHITECTURE.md):
+Metric definitions (the names are a contract: DEVELOPERS.md, Metric names):
 
 * ``synth/ps_ratio_max_dev``: with binned spectra averaged over the synthesized maps (S)
   and over the reference maps (R), the largest over the kept ell bins of

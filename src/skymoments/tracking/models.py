@@ -19,7 +19,6 @@ trusts such a model's origin may set ``SKYMOMENTS_UNSAFE_UNPICKLE_MODELS=1`` (or
 
 from __future__ import annotations
 
-import contextlib
 import json
 import os
 import re
@@ -29,7 +28,7 @@ from typing import Any
 
 import yaml
 
-from skymoments.tracking.settings import settings_from
+from skymoments.tracking.settings import quiet_artifact_downloads, settings_from
 from skymoments.tracking.store import (
     client_for,
     mlflow_uris,
@@ -216,21 +215,6 @@ def _legacy_error(folder: Path, flavors: Any) -> ValueError:
     )
 
 
-@contextlib.contextmanager
-def _no_progress_bar():
-    """Hide MLflow's per-file download bars (four small files) for a block."""
-    key = "MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR"
-    saved = os.environ.get(key)
-    os.environ[key] = "false"
-    try:
-        yield
-    finally:
-        if saved is None:
-            os.environ.pop(key, None)
-        else:
-            os.environ[key] = saved
-
-
 def _unsafe_allowed(flag: bool | None) -> bool:
     if flag is not None:
         return bool(flag)
@@ -281,7 +265,7 @@ def load_model(
     source = reading_uri(settings)
 
     def fetch(dst: str) -> str:
-        with mlflow_uris(source), _no_progress_bar():
+        with mlflow_uris(source), quiet_artifact_downloads():
             return mlflow.artifacts.download_artifacts(
                 artifact_uri=uri, dst_path=dst, tracking_uri=source
             )

@@ -11,10 +11,8 @@ from __future__ import annotations
 
 import contextlib
 import logging
-import math
 import os
 import tempfile
-import time
 import traceback
 import warnings
 from collections.abc import Iterator, Mapping
@@ -425,7 +423,7 @@ def _tracking_node(cfg: Any) -> Any:
             return cfg
     raise ValueError(
         "the config has no 'tracking' node; add `- tracking: local` to the defaults list of "
-        "conf/config.yaml (or pass tracking=local on the command line)"
+        "conf/base.yaml (or pass tracking=local on the command line)"
     )
 
 

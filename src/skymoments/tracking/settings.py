@@ -16,9 +16,10 @@ Two kinds of store are supported (``conf/tracking/``):
 
 from __future__ import annotations
 
+import contextlib
 import os
 import re
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -247,3 +248,18 @@ def _settings_from_uri(text: str, base: Path) -> TrackingSettings:
             "sqlite:////abs/mlflow.db, http://host:port, or the store's root folder"
         )
     return TrackingSettings("uri", f"sqlite:///{path.as_posix()}", None, None)
+
+
+@contextlib.contextmanager
+def quiet_artifact_downloads() -> Iterator[None]:
+    """Turn MLflow's per-file download progress bars off for a block (they clutter output)."""
+    key = "MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR"
+    saved = os.environ.get(key)
+    os.environ[key] = "false"
+    try:
+        yield
+    finally:
+        if saved is None:
+            os.environ.pop(key, None)
+        else:
+            os.environ[key] = saved
