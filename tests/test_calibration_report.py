@@ -112,6 +112,7 @@ def test_report_of_the_exact_posterior():
         "plots/pit.png",
         "plots/spectra.png",
         "plots/fg_intensity.png",
+        "plots/data_strata.png",
         "plots/std_over_exact.png",
     }
     for fig in rep.figures.values():

@@ -44,11 +44,23 @@ def _one_thread():
     torch.set_num_threads(old)
 
 
+def _composed(node: str, option: str):
+    """``<node>=<option>`` as the primary config composes it (groups may use defaults lists)."""
+    from hydra import compose, initialize_config_dir
+
+    with initialize_config_dir(config_dir=str(CONF), version_base="1.3"):
+        return compose("config", overrides=[f"{node}={option}"])[node]
+
+
+def _composed_model():
+    return _composed("model", "unet")
+
+
 def _cfg(**train):
     cfg = OmegaConf.create(
         {
             "seed": 7,
-            "model": OmegaConf.load(CONF / "model" / "unet.yaml"),
+            "model": OmegaConf.to_container(_composed_model(), resolve=True),
             "train": OmegaConf.load(CONF / "train" / "default.yaml"),
             "trainer": OmegaConf.load(CONF / "trainer" / "cpu.yaml"),
         }
@@ -185,10 +197,10 @@ def _gaussian_scenario():
     """16x16 patch, CAMB CMB + Gaussian power-law foreground + white noise, all fixed."""
     from skymoments.sky.build import scenario_from_config
 
-    sky = OmegaConf.load(CONF / "sky" / "gaussian.yaml")  # same CAMB cosmology: cached
+    sky = _composed("sky", "gaussian")  # same CAMB cosmology: cached
     cfg = {
         "patch": {"npix": 16, "pixel_arcmin": 8.0},
-        "sky": OmegaConf.to_container(sky),
+        "sky": OmegaConf.to_container(sky, resolve=True),
         "prior": {
             "r": {"dist": "fixed", "value": 0.1},
             "a_lens": {"dist": "fixed", "value": 1.0},

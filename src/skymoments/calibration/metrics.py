@@ -124,6 +124,34 @@ def pit_histogram(z: np.ndarray, bins: int = PIT_BINS) -> tuple[np.ndarray, np.n
     return edges, counts * bins / max(counts.sum(), 1)
 
 
+def gaussian_crps(truth, mean, std) -> np.ndarray:
+    """Continuous ranked probability score of the predictive N(mean, std^2) at ``truth``.
+
+    Closed form for a Gaussian predictive (Gneiting & Raftery 2007, JASA 102:359, eq. 21):
+    ``CRPS = std * (z (2 Phi(z) - 1) + 2 phi(z) - 1 / sqrt(pi))`` with
+    ``z = (truth - mean) / std``. In the units of the maps (uK); smaller is better; a
+    proper score, so its expectation is minimised only by the true predictive, which
+    rewards calibration and sharpness together.
+    """
+    t, m, s = (np.asarray(a, dtype=np.float64) for a in (truth, mean, std))
+    z = (t - m) / s
+    return s * (
+        z * (2.0 * stats.norm.cdf(z) - 1.0) + 2.0 * stats.norm.pdf(z) - 1.0 / np.sqrt(np.pi)
+    )
+
+
+def gaussian_nll(truth, mean, std) -> np.ndarray:
+    """Negative log density of N(mean, std^2) at ``truth``: ``log(std sqrt(2 pi)) + z^2 / 2``.
+
+    The logarithmic score (Gneiting & Raftery 2007, JASA 102:359, section 4.1), strictly
+    proper; ``std`` in uK, so the value depends on the unit by ``log(unit)``. Smaller is
+    better.
+    """
+    t, m, s = (np.asarray(a, dtype=np.float64) for a in (truth, mean, std))
+    z = (t - m) / s
+    return np.log(s) + 0.5 * np.log(2.0 * np.pi) + 0.5 * z**2
+
+
 def component_score(z_mean: float, z_std: float, covs: dict[str, float]) -> float:
     """The scalar calibration score of one component (0 is ideal; larger is worse).
 
@@ -143,8 +171,13 @@ class CalibrationResult:
     ----------
     metrics : dict of str to float
         ``calib/z_mean_C``, ``calib/z_std_C``, ``calib/cov68_C``, ``calib/cov95_C``,
-        ``calib/cov997_C``, ``calib/ks_C``, ``calib/cov_err_max_C``, ``calib/score_C``,
-        ``eval/mse_C`` per component C, and ``calib/score`` (mean over components).
+        ``calib/cov997_C``, ``calib/ks_C``, ``calib/cov_err_max_C``, ``eval/mse_C``, the
+        proper scores ``calib/crps_C`` (uK) and ``calib/nll_C`` (per pixel, std in uK) per
+        component C, their means over components ``calib/crps`` and ``calib/nll``, and the
+        z/coverage departure ``calib/zcov_error_C`` / ``calib/zcov_error`` (a diagnostic:
+        it has no sharpness term, so a posterior that ignores the data can score well; the
+        same number is still logged as ``calib/score_C`` / ``calib/score``, its former
+        name).
     arrays : dict of str to ndarray
         ``coverage_levels`` (L,), ``coverage_C`` (L,), ``pit_edges`` (bins + 1,),
         ``pit_C`` (bins,).
@@ -196,7 +229,7 @@ def calibration_metrics(
     levels = np.asarray(levels, dtype=float)
     out = CalibrationResult(z=z)
     out.arrays["coverage_levels"] = levels
-    scores = []
+    scores, crps, nll = [], [], []
     for i, c in enumerate(COMPONENTS):
         zc = z[:, i].ravel()
         z_mean = float(np.mean(zc))
@@ -206,6 +239,8 @@ def calibration_metrics(
         _, pit = pit_histogram(zc, pit_bins)
         score = component_score(z_mean, z_std, covs)
         scores.append(score)
+        crps.append(float(np.mean(gaussian_crps(t[:, i], m[:, i], s[:, i]))))
+        nll.append(float(np.mean(gaussian_nll(t[:, i], m[:, i], s[:, i]))))
         out.metrics.update(
             {
                 f"calib/z_mean_{c}": z_mean,
@@ -214,6 +249,9 @@ def calibration_metrics(
                 f"calib/ks_{c}": float(stats.kstest(zc, "norm").statistic),
                 f"calib/cov_err_max_{c}": float(np.max(np.abs(curve - levels))),
                 f"calib/score_{c}": score,
+                f"calib/zcov_error_{c}": score,
+                f"calib/crps_{c}": crps[-1],
+                f"calib/nll_{c}": nll[-1],
                 f"eval/mse_{c}": float(np.mean((t[:, i] - m[:, i]) ** 2)),
             }
         )
@@ -221,4 +259,7 @@ def calibration_metrics(
         out.arrays[f"pit_{c}"] = pit
     out.arrays["pit_edges"] = np.linspace(0.0, 1.0, pit_bins + 1)
     out.metrics["calib/score"] = float(np.mean(scores))
+    out.metrics["calib/zcov_error"] = float(np.mean(scores))
+    out.metrics["calib/crps"] = float(np.mean(crps))
+    out.metrics["calib/nll"] = float(np.mean(nll))
     return out

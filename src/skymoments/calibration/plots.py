@@ -237,7 +237,8 @@ def fg_intensity_plot(arrays: dict[str, np.ndarray]) -> Figure:
             x, arrays[f"abs_mean_fg_{c}"] / arrays[f"abs_truth_fg_{c}"], "o-", color=col, label=c
         )
     axes[0].axhline(1, color="k", ls=":", lw=1)
-    axes[0].set_ylabel("z std (ideal 1)")
+    axes[0].set_ylabel("z std (diagnostic: need not be 1)")
+    axes[0].set_title("bins of the true foreground", fontsize=8)
     axes[1].set_ylabel("mean predicted std [uK]")
     axes[2].set_ylabel("mean |posterior mean| / mean |truth|")
     for ax in axes:
@@ -266,5 +267,42 @@ def std_over_exact_plot(ratio_eb: np.ndarray, side_deg: float | None = None) -> 
         axes[i].set_yticks([])
         cb = fig.colorbar(im, ax=axes[i], fraction=0.046, pad=0.03)
         cb.set_label("ratio (ideal 1)", fontsize=7)
+    fig.tight_layout()
+    return fig
+
+
+def data_strata_plot(arrays: dict[str, np.ndarray]) -> Figure:
+    """z std per predicted-std decile and per observed-intensity quartile (ideal 1 in each).
+
+    Parameters
+    ----------
+    arrays : dict
+        From ``data_stratified_calibration``: ``std_dec_centres_C``, ``z_std_stddec_C``,
+        ``data_p_centres``, ``z_std_dbin_C``; optional ``z_std_fg_C`` and ``fg_centres``
+        (true-foreground bins, drawn as the diagnostic they are).
+    """
+    has_fg = "fg_centres" in arrays
+    fig, (axes,) = _subplots(1, 3 if has_fg else 2, ((10.5 if has_fg else 7.0), 3.0))
+    for c in COMPONENTS:
+        col = _COLOURS[c]
+        axes[0].plot(
+            arrays[f"std_dec_centres_{c}"], arrays[f"z_std_stddec_{c}"], "o-", color=col, label=c
+        )
+        axes[1].plot(arrays["data_p_centres"], arrays[f"z_std_dbin_{c}"], "o-", color=col, label=c)
+        if has_fg:
+            axes[2].plot(arrays["fg_centres"], arrays[f"z_std_fg_{c}"], "o--", color=col, label=c)
+    axes[0].set_xlabel("predicted std, decile median [uK]")
+    axes[0].set_xscale("log")
+    axes[1].set_xlabel("observed data |P| (smoothed), quartile median [uK]")
+    axes[0].set_title("bins of the predicted std: ideal 1", fontsize=8)
+    axes[1].set_title("bins of the data: ideal 1", fontsize=8)
+    if has_fg:
+        axes[2].set_xlabel("true foreground |P| (smoothed) [uK]")
+        axes[2].set_title("diagnostic: bins of the truth, need not be 1", fontsize=8)
+    for ax in axes:
+        ax.axhline(1, color="k", ls=":", lw=1)
+        ax.axhspan(0.8, 1.25, color="0.9", zorder=0)
+        ax.set_ylabel("z std")
+        ax.legend(fontsize=7)
     fig.tight_layout()
     return fig

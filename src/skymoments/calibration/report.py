@@ -28,7 +28,7 @@ from skymoments.calibration.metrics import (
     check_posterior_inputs,
 )
 from skymoments.calibration.multipole import multipole_figures
-from skymoments.calibration.stratify import stratified_calibration
+from skymoments.calibration.stratify import data_stratified_calibration, stratified_calibration
 from skymoments.calibration.wiener import WienerFilter
 from skymoments.maps.eb import qu_to_eb
 from skymoments.maps.geometry import FlatPatch
@@ -127,6 +127,7 @@ def evaluate_posterior(
     n_fg_bins: int = 4,
     make_figures: bool = True,
     grid_index: int = 0,
+    flagged=None,
 ) -> EvalReport:
     """Calibration, accuracy and baselines of a posterior on a validation set.
 
@@ -157,6 +158,10 @@ def evaluate_posterior(
         Build the figures (skip for sweeps that need only numbers).
     grid_index : int
         Which validation map the map grid shows.
+    flagged : ndarray of bool, shape (n,), optional
+        Per-map out-of-range flag computed from the data (the model's input range):
+        gives ``eval/flagged_fraction`` and the calibration of the unflagged and flagged
+        maps apart, ``calib/<metric>_inrange_C`` and ``calib/<metric>_outrange_C``.
 
     Returns
     -------
@@ -183,6 +188,11 @@ def evaluate_posterior(
     cal = calibration_metrics(t, m, s)
     metrics.update(cal.metrics)
     arrays.update(cal.arrays)
+    ds_metrics, ds_arrays = data_stratified_calibration(t, m, s, d, patch)
+    metrics.update(ds_metrics)
+    arrays.update(ds_arrays)
+    if flagged is not None:
+        metrics.update(_flag_split(t, m, s, flagged))
     mp_metrics, mp_arrays = multipole_figures(m, t, patch, data_qu=d, edges=edges)
     metrics.update(mp_metrics)
     arrays.update(mp_arrays)
@@ -250,6 +260,7 @@ def evaluate_posterior(
             cal.arrays["pit_edges"], {c: cal.arrays[f"pit_{c}"] for c in COMPONENTS}
         )
         rep.figures["plots/spectra.png"] = plots.spectra_panel(mp_arrays, w_arrays)
+        rep.figures["plots/data_strata.png"] = plots.data_strata_plot(arrays)
         if foreground_qu is not None:
             rep.figures["plots/fg_intensity.png"] = plots.fg_intensity_plot(arrays)
         if exact is not None:
@@ -257,6 +268,25 @@ def evaluate_posterior(
                 arrays["std_over_exact"], side_deg=side_deg
             )
     return rep
+
+
+FLAG_SPLIT_KEYS = ("z_mean", "z_std", "cov68", "cov95", "crps", "nll")
+
+
+def _flag_split(t, m, s, flagged) -> dict[str, float]:
+    """Calibration of the unflagged (``inrange``) and flagged (``outrange``) maps apart."""
+    flag = np.asarray(flagged, dtype=bool).reshape(-1)
+    if flag.shape != (t.shape[0],):
+        raise ValueError(f"flagged has {flag.size} values for {t.shape[0]} maps; give one per map")
+    out = {"eval/flagged_fraction": float(np.mean(flag)), "eval/flagged_count": float(flag.sum())}
+    for name, sel in (("inrange", ~flag), ("outrange", flag)):
+        if not np.any(sel):
+            continue
+        cal = calibration_metrics(t[sel], m[sel], s[sel]).metrics
+        for c in COMPONENTS:
+            for key in FLAG_SPLIT_KEYS:
+                out[f"calib/{key}_{name}_{c}"] = cal[f"calib/{key}_{c}"]
+    return out
 
 
 def _fits_value(v):
@@ -273,6 +303,8 @@ def write_posterior(
     std_eb,
     patch: FlatPatch,
     header: dict | None = None,
+    patch_flag=None,
+    patch_score=None,
 ) -> tuple[Path, Path]:
     """Write posterior maps as ``<stem>.npz`` and ``<stem>.fits``, each atomically.
 
@@ -284,6 +316,10 @@ def write_posterior(
     patch : FlatPatch
     header : dict, optional
         Provenance (run id, config name, seed, ...): JSON-serializable values.
+    patch_flag, patch_score : ndarray, shape (n,), optional
+        Per-map out-of-range flag (True: the data lie outside the model's training range)
+        and score; stored as ``patch_flag``/``patch_score`` in the npz and as the ``OUTOFRANGE``
+        table HDU (columns ``FLAG``, ``SCORE``) in the FITS file.
 
     Notes
     -----
@@ -311,6 +347,18 @@ def write_posterior(
     n_bad = int(np.count_nonzero(std <= 0))
     if n_bad:
         raise ValueError(f"std_eb must be > 0 everywhere, but {n_bad} pixels are <= 0")
+    extra = {}
+    if patch_flag is not None:
+        n_maps = 1 if mean.ndim == 3 else mean.shape[0]
+        flag = np.asarray(patch_flag, dtype=bool).reshape(-1)
+        score = (
+            np.full(flag.shape, np.nan)
+            if patch_score is None
+            else np.asarray(patch_score, dtype=np.float64).reshape(-1)
+        )
+        if flag.size != n_maps or score.size != n_maps:
+            raise ValueError(f"patch_flag/patch_score need one value per map ({n_maps})")
+        extra = {"patch_flag": flag, "patch_score": score}
     header = dict(header or {})
     try:
         header_json = json.dumps(header, sort_keys=True, default=str)
@@ -331,6 +379,7 @@ def write_posterior(
                 unit="uK",
                 channels="E,B",
                 header_json=header_json,
+                **extra,
             )
 
     prim = fits.PrimaryHDU()
@@ -357,6 +406,16 @@ def write_posterior(
         h["CUNIT1"] = "deg"
         h["CUNIT2"] = "deg"
         hdus.append(hdu)
+    if extra:
+        table = fits.BinTableHDU.from_columns(
+            [
+                fits.Column(name="FLAG", format="L", array=extra["patch_flag"]),
+                fits.Column(name="SCORE", format="D", array=extra["patch_score"]),
+            ],
+            name="OUTOFRANGE",
+        )
+        table.header["COMMENT"] = "FLAG: data outside the model's training input range"
+        hdus.append(table)
     with _atomic(fits_path) as tmp:
         fits.HDUList(hdus).writeto(tmp, overwrite=True)
     return npz_path, fits_path

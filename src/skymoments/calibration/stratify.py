@@ -1,4 +1,9 @@
-"""Calibration stratified by the local intensity of the true foreground.
+"""Calibration stratified by what the analyst sees, and by the true foreground (a diagnostic).
+
+:func:`data_stratified_calibration` bins by functions of the data alone (the predicted std,
+the observed polarized intensity): there a calibrated posterior has z std 1 in every bin.
+:func:`stratified_calibration` bins by the true foreground, which the analyst never sees:
+a diagnostic whose z std need not be 1 even for the exact posterior.
 
 Intensity. ``I = G * |P_fg|`` with ``|P_fg| = sqrt(Q_fg^2 + U_fg^2)`` the polarized
 intensity of the true foreground and ``G`` a periodic Gaussian of FWHM ``fwhm_pix`` pixels
@@ -116,4 +121,76 @@ def stratified_calibration(
             metrics[f"eval/abs_truth_fgbin{k}_{c}"] = rows["abs_truth_fg"][-1]
         for key, vals in rows.items():
             arrays[f"{key}_{c}"] = np.array(vals)
+    return metrics, arrays
+
+
+def _bin_index(values: np.ndarray, n_bins: int) -> tuple[np.ndarray, np.ndarray]:
+    """Quantile edges and equal-count bins by rank (ties, e.g. a uniform std, split by order)."""
+    flat = np.ravel(values)
+    edges = np.quantile(flat, np.linspace(0.0, 1.0, n_bins + 1))
+    rank = np.empty(flat.size, dtype=np.int64)
+    rank[np.argsort(flat, kind="stable")] = np.arange(flat.size)
+    return edges, (rank * n_bins // flat.size).reshape(np.shape(values))
+
+
+def data_stratified_calibration(
+    truth_eb,
+    mean_eb,
+    std_eb,
+    data_qu,
+    patch: FlatPatch,
+    *,
+    n_std_bins: int = 10,
+    n_data_bins: int = 4,
+    fwhm_pix: float | None = None,
+) -> tuple[dict[str, float], dict[str, np.ndarray]]:
+    """Calibration in bins of what the analyst sees: the predicted std and the data.
+
+    A calibrated posterior has ``E[z^2 | d] = 1`` for every function of the data ``d``, so
+    the z std is 1 in every bin of a quantity computed from ``d`` alone: the predicted std
+    of the component itself (deciles, per component) and the observed polarized intensity
+    of the data, smoothed like :func:`foreground_intensity` (quartiles, shared by E and
+    B). Bins of the true foreground, by contrast, are not functions of ``d``, so there the
+    z std of even the exact posterior need not be 1 (:func:`stratified_calibration` is a
+    diagnostic).
+
+    Returns
+    -------
+    metrics : dict
+        ``calib/z_std_stddec{k}_C`` (k = 0 smallest predicted std), ``eval/std_stddec{k}_C``,
+        ``calib/z_std_stddec_min_C`` / ``_max_C``, and ``calib/z_std_dbin{k}_C`` (k = 0
+        faintest data), ``eval/data_p_dbin{k}`` (median data intensity, uK).
+    arrays : dict
+        ``std_dec_centres_C``, ``z_std_stddec_C`` (n_std_bins,); ``data_p_edges``
+        (n_data_bins + 1,), ``data_p_centres``, ``z_std_dbin_C`` (n_data_bins,).
+    """
+    t, m, s = check_posterior_inputs(truth_eb, mean_eb, std_eb)
+    d = np.asarray(data_qu, dtype=np.float64)
+    if d.shape != t.shape:
+        raise ValueError(f"data_qu has shape {d.shape}, expected {t.shape} like truth_eb")
+    z = (t - m) / s
+    metrics: dict[str, float] = {}
+    arrays: dict[str, np.ndarray] = {}
+    for i, c in enumerate(COMPONENTS):
+        _, idx = _bin_index(s[:, i], n_std_bins)
+        zs = np.array([np.std(z[:, i][idx == k]) for k in range(n_std_bins)])
+        centres = np.array([np.median(s[:, i][idx == k]) for k in range(n_std_bins)])
+        arrays[f"z_std_stddec_{c}"] = zs
+        arrays[f"std_dec_centres_{c}"] = centres
+        for k in range(n_std_bins):
+            metrics[f"calib/z_std_stddec{k}_{c}"] = float(zs[k])
+            metrics[f"eval/std_stddec{k}_{c}"] = float(centres[k])
+        metrics[f"calib/z_std_stddec_min_{c}"] = float(zs.min())
+        metrics[f"calib/z_std_stddec_max_{c}"] = float(zs.max())
+    inten = foreground_intensity(d, patch, fwhm_pix)
+    edges, idx = _bin_index(inten, n_data_bins)
+    arrays["data_p_edges"] = edges
+    arrays["data_p_centres"] = np.array([np.median(inten[idx == k]) for k in range(n_data_bins)])
+    for k in range(n_data_bins):
+        metrics[f"eval/data_p_dbin{k}"] = float(arrays["data_p_centres"][k])
+    for i, c in enumerate(COMPONENTS):
+        zs = np.array([np.std(z[:, i][idx == k]) for k in range(n_data_bins)])
+        arrays[f"z_std_dbin_{c}"] = zs
+        for k in range(n_data_bins):
+            metrics[f"calib/z_std_dbin{k}_{c}"] = float(zs[k])
     return metrics, arrays

@@ -135,6 +135,10 @@ class MomentsDataModule(pl.LightningDataModule):
         Global validation batch size; default ``batch_size``.
     stage : {"mean", "var"}
         Which stage the next ``train_dataloader`` serves; each stage gets its own draws.
+    var_train_scenario : skymoments.sky.Scenario, optional
+        Training draws of the variance stage (default ``train_scenario``): a scenario on a
+        part of the foreground bank the mean stage never saw, so that the variance stage
+        learns from residuals on foregrounds new to the mean network, as at test time.
     """
 
     def __init__(
@@ -149,6 +153,7 @@ class MomentsDataModule(pl.LightningDataModule):
         val_batch_size: int | None = None,
         pin_memory: bool = False,
         stage: str = "mean",
+        var_train_scenario=None,
     ) -> None:
         super().__init__()
         for name, value in (
@@ -161,6 +166,9 @@ class MomentsDataModule(pl.LightningDataModule):
         if isinstance(num_workers, bool) or not isinstance(num_workers, int) or num_workers < 0:
             raise ValueError(f"train.num_workers must be an integer >= 0, got {num_workers!r}")
         self.train_scenario = train_scenario
+        self.var_train_scenario = (
+            var_train_scenario if var_train_scenario is not None else train_scenario
+        )
         self.val_scenario = val_scenario
         self.batch_size = batch_size
         self.steps_per_epoch = steps_per_epoch
@@ -214,8 +222,9 @@ class MomentsDataModule(pl.LightningDataModule):
         self.val_draw()
 
     def train_dataset(self) -> TrainDrawStream:
+        scenario = self.var_train_scenario if self.stage == "var" else self.train_scenario
         return TrainDrawStream(
-            self.train_scenario,
+            scenario,
             self.per_device(self.batch_size, "train.batch_size"),
             self.steps_per_epoch,
             self.seed,

@@ -132,20 +132,74 @@ def _trainer_kwargs(cfg_trainer) -> dict:
     return kwargs
 
 
-def fit_scalers(train_scenario, n: int, seed: int) -> tuple[ChannelScaler, ChannelScaler]:
-    """Input (Q/U, centred) and target (E/B, zero shift) scalers from ``n`` training draws.
+def scaler_draw(train_scenario, n: int, seed: int):
+    """The ``n`` training draws the scalers and the input range are fitted on.
 
     Drawn from the ``scalers`` seed stream, so they do not reuse any training batch.
     """
     if isinstance(n, bool) or not isinstance(n, int) or n < 2:
         raise ValueError(f"train.fit_scalers_n must be an integer >= 2, got {n!r}")
-    draw = train_scenario.draw(stream_generator(seed, "scalers"), n)
+    return train_scenario.draw(stream_generator(seed, "scalers"), n)
+
+
+def fit_scalers(
+    train_scenario, n: int, seed: int, draw=None
+) -> tuple[ChannelScaler, ChannelScaler]:
+    """Input (Q/U, centred) and target (E/B, zero shift) scalers from ``n`` training draws.
+
+    Drawn from the ``scalers`` seed stream (:func:`scaler_draw`) unless ``draw`` is given.
+    """
+    if draw is None:
+        draw = scaler_draw(train_scenario, n, seed)
     n_in = int(np.shape(draw.data_qu)[1])
     n_out = int(np.shape(draw.target_eb)[1])
     return (
         ChannelScaler(n_in, center=True).fit(draw.data_qu),
         ChannelScaler(n_out, center=False).fit(draw.target_eb),
     )
+
+
+# Lowest variance floor relative to the ceiling: float32 resolves a scaled residual of O(1)
+# to about 1e-7, so a variance of 1e-6 (std 1e-3) is still far above round-off while far
+# below any posterior std a study reports.
+MIN_FLOOR_FRACTION = 1e-6
+
+
+def variance_bounds(scenario, target_scaler, cfg) -> tuple[np.ndarray, np.ndarray] | None:
+    """Floor and ceiling of the log-variance head in scaled units, or None for no bounds.
+
+    From the problem itself (:meth:`skymoments.sky.Scenario.target_variance_bounds`): the
+    prior pixel variance of the target at the top of its prior as the ceiling, the
+    noise-only posterior variance as the floor (at least ``MIN_FLOOR_FRACTION`` of the
+    ceiling), each divided by the target scale squared. Only for ``model.positivity=logvar``
+    with ``train.variance_bounds`` true, on a scenario that can give them.
+    """
+    if str(cfg.model.get("positivity", "softplus")) != "logvar":
+        return None
+    if not bool(cfg.train.get("variance_bounds", True)):
+        return None
+    bounds = getattr(scenario, "target_variance_bounds", None)
+    if bounds is None:
+        return None
+    floor, ceiling = bounds()
+    scale2 = target_scaler.scale.detach().double().reshape(-1).numpy() ** 2
+    ceiling = np.asarray(ceiling) / scale2
+    floor = np.maximum(np.asarray(floor) / scale2, MIN_FLOOR_FRACTION * ceiling)
+    return floor, ceiling
+
+
+def _check_variance_inputs(node, input_scaler, target_scaler, sees_mean: bool) -> None:
+    want = input_scaler.n_channels + (target_scaler.n_channels if sees_mean else 0)
+    got = node.get("in_channels") if hasattr(node, "get") else None
+    if got is not None and int(got) != want:
+        raise ValueError(
+            f"model.variance.in_channels={got} but the variance network reads {want} channels "
+            + (
+                "(the data and the mean network's output, model.variance_sees_mean=true)"
+                if sees_mean
+                else "(the data; set model.variance_sees_mean=true to add the mean's output)"
+            )
+        )
 
 
 def _fit_stage(module, dm, *, label, monitor, max_epochs, cfg, logger, callbacks, workdir):
@@ -202,6 +256,7 @@ def train_moments(
     logger=None,
     callbacks=(),
     workdir: str | Path = "checkpoints",
+    var_train_scenario=None,
 ) -> MomentsResult:
     """Train the mean stage, then the variance stage, and predict on the validation set.
 
@@ -224,6 +279,9 @@ def train_moments(
         Added to both stages' trainers.
     workdir : path
         Where the stage checkpoints go (``<workdir>/mean/best.ckpt``, ``.../var/...``).
+    var_train_scenario : skymoments.sky.Scenario, optional
+        Training draws of the variance stage (default ``train_scenario``), e.g. on a part
+        of the foreground bank disjoint from the mean stage's.
 
     Returns
     -------
@@ -236,13 +294,22 @@ def train_moments(
     tr = cfg.train
     t_start = time.perf_counter()
 
-    input_scaler, target_scaler = fit_scalers(train_scenario, int(tr.fit_scalers_n), seed)
+    draw = scaler_draw(train_scenario, int(tr.fit_scalers_n), seed)
+    input_scaler, target_scaler = fit_scalers(train_scenario, 0, seed, draw=draw)
     torch.manual_seed(torch_seed(seed, "init"))
+    sees_mean = bool(cfg.model.get("variance_sees_mean", False))
     mean_net = build_network(cfg.model.mean, key="model.mean")
     var_net = build_network(cfg.model.variance, key="model.variance")
+    _check_variance_inputs(cfg.model.variance, input_scaler, target_scaler, sees_mean)
     positivity = str(cfg.model.get("positivity", "softplus"))
     eps = float(cfg.model.get("eps", 1e-6))
-    model = PosteriorMoments(mean_net, var_net, input_scaler, target_scaler, positivity, eps)
+    model = PosteriorMoments(
+        mean_net, var_net, input_scaler, target_scaler, positivity, eps, sees_mean
+    )
+    bounds = variance_bounds(train_scenario, target_scaler, cfg)
+    if bounds is not None:
+        model.positivity.set_bounds(*bounds)
+    model.input_range.fit(draw.data_qu)
 
     # Threads and workers: as configured, or measured on this machine when `auto` (a
     # draw of its own stream, so no training or scaler draw changes).
@@ -268,6 +335,7 @@ def train_moments(
         num_workers=parallel["workers"],
         val_batch_size=tr.get("val_batch_size"),
         stage="mean",
+        var_train_scenario=var_train_scenario,
     )
     common = {"cfg": cfg, "logger": logger, "callbacks": list(callbacks)}
 
@@ -284,7 +352,16 @@ def train_moments(
 
     dm.set_stage("var")
     var_module = VarianceModule(
-        mean_net, var_net, positivity, optimizer, scheduler, input_scaler, target_scaler, eps
+        mean_net,
+        var_net,
+        model.positivity,
+        optimizer,
+        scheduler,
+        input_scaler,
+        target_scaler,
+        eps,
+        loss=str(tr.get("variance_loss", "gaussian_nll")),
+        sees_mean=sees_mean,
     )
     s2 = _fit_stage(
         var_module,

@@ -7,6 +7,7 @@ applied inside the step), so the losses are O(1) whatever the map amplitudes.
 from __future__ import annotations
 
 import inspect
+import math
 
 import lightning.pytorch as pl
 import torch
@@ -112,13 +113,38 @@ class MeanModule(pl.LightningModule):
         return _configure(self, self.net.parameters(), "val/loss_mean")
 
 
+VARIANCE_LOSSES = ("gaussian_nll", "squared")
+
+_HALF_LOG_2PI = 0.5 * math.log(2.0 * math.pi)
+
+
+def gaussian_nll(resid2: torch.Tensor, log_var: torch.Tensor) -> torch.Tensor:
+    """Mean Gaussian negative log-likelihood ``(r^2 exp(-s) + s + log 2 pi) / 2`` per pixel.
+
+    Minimised over ``s`` by ``exp(s) = E[r^2 | d]``; its gradient ``(1 - r^2 exp(-s)) / 2``
+    in ``s`` is large, not vanishing, where the variance is underestimated.
+    """
+    return torch.mean(0.5 * (resid2 * torch.exp(-log_var) + log_var) + _HALF_LOG_2PI)
+
+
 class VarianceModule(pl.LightningModule):
     """Stage two: ``g(d) ~ Var[target | d]`` with the mean network frozen.
 
-    Minimizes ``((target - f(d))**2 - g(d))**2`` per pixel and channel, whose minimiser is
-    the posterior variance (Jeffrey & Wandelt 2020, arXiv:2011.05991, second moment
-    loss), in scaled target units. ``g`` is kept positive by ``positivity`` (see
-    :class:`~skymoments.nets.Positivity`).
+    With ``f`` the frozen posterior-mean network and ``r = target - f(d)``, the minimiser
+    over ``g`` of either loss is ``E[r^2 | d] = Var[target | d]`` (the second moment of
+    Jeffrey & Wandelt 2020, arXiv:2011.05991, who allow any loss with that minimiser):
+
+    ``gaussian_nll`` (default)
+        The Gaussian negative log-likelihood of ``r`` in ``s = log g``:
+        ``(r^2 exp(-s) + s + log 2 pi) / 2``, a proper scoring rule of the predictive
+        N(f, g) (Gneiting & Raftery 2007, JASA 102:359). It punishes an underestimate as
+        ``r^2 / g`` (without bound) and an overestimate as ``log g``, and its gradient in
+        ``s`` does not vanish as ``g -> 0``; checkpoint choice by its validation value is
+        choice by a proper score.
+    ``squared``
+        ``(r^2 - g)^2``: barely punishes an underestimate, and with ``g = exp(s)`` its
+        gradient in ``s`` carries a factor ``g``, so a pixel driven to a tiny variance
+        cannot recover. Kept for comparison.
 
     The mean network is put in eval mode and its parameters get ``requires_grad=False``;
     :meth:`train` keeps it in eval mode whatever Lightning asks, so its batch-norm
@@ -129,34 +155,49 @@ class VarianceModule(pl.LightningModule):
     mean_net : nn.Module
         The trained stage-one network (frozen here).
     var_net : nn.Module
-        Scaled Q/U to the raw variance output (before positivity).
-    positivity : {"softplus", "logvar"}
+        Scaled Q/U (and, with ``sees_mean``, the scaled mean) to the raw variance output.
+    positivity : {"softplus", "logvar"} or Positivity
+        A module is shared (its bounds are those of the model being trained).
     optimizer, scheduler, input_scaler, target_scaler
         As in :class:`MeanModule`.
     eps : float
-        Softplus floor, scaled units.
+        Softplus floor, scaled units (used when ``positivity`` is a name).
+    loss : {"gaussian_nll", "squared"}
+    sees_mean : bool
+        Concatenate the frozen mean network's output to the variance network's input.
     """
 
     def __init__(
         self,
         mean_net: nn.Module,
         var_net: nn.Module,
-        positivity: str,
+        positivity,
         optimizer,
         scheduler=None,
         input_scaler: nn.Module | None = None,
         target_scaler: nn.Module | None = None,
         eps: float = 1e-6,
+        loss: str = "gaussian_nll",
+        sees_mean: bool = False,
     ) -> None:
         super().__init__()
         self.save_hyperparameters(
-            logger=False, ignore=["mean_net", "var_net", "input_scaler", "target_scaler"]
+            logger=False,
+            ignore=["mean_net", "var_net", "input_scaler", "target_scaler", "positivity"],
         )
+        if loss not in VARIANCE_LOSSES:
+            raise ValueError(
+                f"train.variance_loss={loss!r}; choose one of {', '.join(VARIANCE_LOSSES)}"
+            )
+        self.loss_kind = loss
+        self.sees_mean = bool(sees_mean)
         self.mean_net = mean_net
         self.mean_net.requires_grad_(False)
         self.mean_net.eval()
         self.var_net = var_net
-        self.positivity = Positivity(positivity, eps)
+        self.positivity = (
+            positivity if isinstance(positivity, nn.Module) else Positivity(positivity, eps)
+        )
         self.input_scaler = input_scaler if input_scaler is not None else nn.Identity()
         self.target_scaler = target_scaler if target_scaler is not None else nn.Identity()
 
@@ -165,16 +206,27 @@ class VarianceModule(pl.LightningModule):
         self.mean_net.eval()
         return self
 
+    def _raw(self, x: torch.Tensor, mean: torch.Tensor) -> torch.Tensor:
+        inp = torch.cat([x, mean], dim=1) if self.sees_mean else x
+        return self.var_net(inp)
+
     def forward(self, x_scaled: torch.Tensor) -> torch.Tensor:
-        return self.positivity(self.var_net(x_scaled))
+        with torch.no_grad():
+            mean = self.mean_net(x_scaled)
+        return self.positivity(self._raw(x_scaled, mean))
 
     def _step(self, batch, split: str) -> torch.Tensor:
         data, target = batch[0], batch[1]
         x = self.input_scaler(data)
         t = self.target_scaler(target)
         with torch.no_grad():
-            resid2 = (t - self.mean_net(x)) ** 2
-        loss = F.mse_loss(self(x), resid2)
+            mean = self.mean_net(x)
+            resid2 = (t - mean) ** 2
+        raw = self._raw(x, mean)
+        if self.loss_kind == "gaussian_nll":
+            loss = gaussian_nll(resid2, self.positivity.log_variance(raw))
+        else:
+            loss = F.mse_loss(self.positivity(raw), resid2)
         _log_epoch_loss(self, f"{split}/loss_var", loss, data.shape[0])
         return loss
 

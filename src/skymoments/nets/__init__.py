@@ -10,13 +10,14 @@
 from skymoments.nets.build import build_network
 from skymoments.nets.posterior import POSITIVITY, Positivity, PosteriorMoments
 from skymoments.nets.resnet import DilatedResNet
-from skymoments.nets.scaler import ChannelScaler
+from skymoments.nets.scaler import ChannelScaler, InputRange
 from skymoments.nets.spectral import SpectralConv2d, SpectralNet
 from skymoments.nets.unet import UNet
 
 __all__ = [
     "POSITIVITY",
     "ChannelScaler",
+    "InputRange",
     "DilatedResNet",
     "PosteriorMoments",
     "Positivity",

@@ -91,3 +91,107 @@ class ChannelScaler(nn.Module):
 
     def extra_repr(self) -> str:
         return f"n_channels={self.n_channels}, center={self.center}"
+
+
+class InputRange(nn.Module):
+    """The range of observable statistics of the training inputs, and a per-patch flag.
+
+    A moment network is a fit to the training distribution of the data; on a patch whose
+    data look unlike anything it was trained on (brighter or more peaked foregrounds) its
+    moments are an extrapolation. The statistics are computed from the data ``d`` alone,
+    never from the truth, so the flag is available wherever the posterior is used.
+
+    Statistics of one patch: the polarized intensity ``P = sqrt(Q^2 + U^2)`` of the data,
+    smoothed by a periodic Gaussian of each FWHM in ``fwhm_pix`` (0: unsmoothed), and its
+    ``quantiles`` over the patch pixels; features are their natural logarithms (intensity
+    ranges over decades). Quantiles of the intensity at several scales follow both the
+    brightness (high quantiles) and how concentrated it is (high against median, scale by
+    scale) while being robust to any single pixel.
+
+    :meth:`fit` records, per feature, the minimum and maximum over the training patches.
+    :meth:`score` of a patch is ``max_k (f_k - max_k^train) / (max_k^train - min_k^train)``:
+    positive when at least one feature lies above everything seen in training, in units of
+    the training spread. Only the upper side is flagged: fainter than the faintest training
+    patch is not an extrapolation into brighter foregrounds. :meth:`flag` is ``score > 0``.
+
+    Buffers (``fwhm_pix``, ``quantiles``, ``low``, ``high``, ``fitted``) travel with the
+    model's state dict.
+    """
+
+    def __init__(self, fwhm_pix=(0.0, 3.0, 8.0), quantiles=(0.5, 0.99)) -> None:
+        super().__init__()
+        self.register_buffer("fwhm_pix", torch.as_tensor(fwhm_pix, dtype=torch.float64))
+        self.register_buffer("quantiles", torch.as_tensor(quantiles, dtype=torch.float64))
+        n = len(fwhm_pix) * len(quantiles)
+        self.register_buffer("low", torch.zeros(n, dtype=torch.float64))
+        self.register_buffer("high", torch.zeros(n, dtype=torch.float64))
+        self.register_buffer("fitted", torch.tensor(False))
+
+    @property
+    def n_features(self) -> int:
+        return int(self.fwhm_pix.numel() * self.quantiles.numel())
+
+    def feature_names(self) -> list[str]:
+        """``log_P_q<quantile>_fwhm<pixels>`` per feature, in the order of :meth:`features`."""
+        return [
+            f"log_P_q{float(q):g}_fwhm{float(f):g}" for f in self.fwhm_pix for q in self.quantiles
+        ]
+
+    @torch.no_grad()
+    def features(self, data_qu) -> torch.Tensor:
+        """Per-patch features, shape (n, n_features), float64, from Q/U data (n, 2, ny, nx)."""
+        x = torch.as_tensor(
+            np.asarray(data_qu) if not isinstance(data_qu, torch.Tensor) else data_qu
+        )
+        x = x.detach().to("cpu", torch.float64)
+        if x.ndim != 4 or x.shape[1] != 2:
+            raise ValueError(
+                f"input-range statistics need Q/U maps (n, 2, ny, nx), got {tuple(x.shape)}"
+            )
+        if not torch.all(torch.isfinite(x)):
+            raise ValueError(
+                "input-range statistics got NaN or infinite data; mask or fill them first"
+            )
+        amp = torch.hypot(x[:, 0], x[:, 1])
+        ny, nx = amp.shape[-2:]
+        ky = 2.0 * np.pi * torch.fft.fftfreq(ny, dtype=torch.float64)
+        kx = 2.0 * np.pi * torch.fft.fftfreq(nx, dtype=torch.float64)
+        k2 = ky[:, None] ** 2 + kx[None, :] ** 2
+        spec = torch.fft.fft2(amp)
+        tiny = torch.finfo(torch.float64).tiny
+        cols = []
+        for fwhm in self.fwhm_pix.tolist():
+            if fwhm > 0:
+                sigma = fwhm / np.sqrt(8.0 * np.log(2.0))  # FWHM = sigma sqrt(8 ln 2)
+                sm = torch.fft.ifft2(spec * torch.exp(-0.5 * sigma**2 * k2)).real
+            else:
+                sm = amp
+            q = torch.quantile(sm.reshape(len(sm), -1), self.quantiles, dim=1).T
+            cols.append(torch.log(torch.clamp(q, min=tiny)))
+        return torch.cat(cols, dim=1)
+
+    @torch.no_grad()
+    def fit(self, data_qu) -> InputRange:
+        """Record the per-feature range over the training patches ``data_qu``."""
+        f = self.features(data_qu)
+        if len(f) < 2:
+            raise ValueError("the input range needs at least 2 training patches")
+        self.low.copy_(f.min(dim=0).values)
+        self.high.copy_(f.max(dim=0).values)
+        self.fitted.fill_(True)
+        return self
+
+    @torch.no_grad()
+    def score(self, data_qu) -> np.ndarray:
+        """Per-patch out-of-range score, shape (n,) (> 0: outside the training range)."""
+        if not bool(self.fitted):
+            raise ValueError(
+                "this model has no input-range statistics (trained before they were recorded)"
+            )
+        f = self.features(data_qu)
+        spread = torch.clamp(self.high - self.low, min=1e-12)
+        return ((f - self.high) / spread).max(dim=1).values.numpy()
+
+    def flag(self, data_qu) -> np.ndarray:
+        """Per-patch boolean: True where the data lie outside the training range."""
+        return self.score(data_qu) > 0

@@ -479,10 +479,23 @@ def _load_images(images) -> np.ndarray:
 class ImageBank:
     """Foreground maps drawn at random from a fixed set of images.
 
-    Used for training on a synthesized bank, or on the single training image: each map is
-    a uniformly chosen image, transformed by a uniformly chosen element of the square's
-    symmetry group (4 rotations x 2 reflections, done spin-2-correctly by
-    ``maps.symmetry.apply_symmetry_qu``) when ``symmetries`` is True.
+    Used for training on a synthesized bank, or on the single training image. Each map is
+    a uniformly chosen image, then
+
+    * with ``translations``: a window of the patch size at a uniformly random offset. A
+      ``periodic`` image (a synthesized map, a draw of a periodic generator) is read with
+      wrap-around, so every one of its ``n^2`` whole-pixel translations is used: a
+      translation is an exact symmetry of a stationary periodic field, as the rotations and
+      reflections are. A non-periodic image (a cut of the real sky) has a seam at its
+      edge, so its windows lie inside it: offsets in ``[0, n - npix]`` per axis, none for an
+      image of the patch size. Without translations the window is the image's corner
+      ``[0:npix, 0:npix]``;
+    * with ``symmetries``: transformed by a uniformly chosen element of the square's
+      symmetry group (4 rotations x 2 reflections, done spin-2-correctly by
+      ``maps.symmetry.apply_symmetry_qu``).
+
+    An image may be larger than the patch (one image covering several patch areas, as a
+    real foreground template would).
 
     Parameters
     ----------
@@ -495,6 +508,10 @@ class ImageBank:
         that its rms of Q and U over all images and pixels is ``amplitude_uk``.
     amplitude_uk : float, optional
         Target rms for ``normalize="rms"`` (default 1).
+    translations : bool
+        Random whole-pixel translations (windows) per draw.
+    periodic : bool
+        Whether the images are periodic (see above).
     """
 
     name = "image_bank"
@@ -506,6 +523,8 @@ class ImageBank:
         symmetries: bool = True,
         normalize: str | None = None,
         amplitude_uk: float | None = None,
+        translations: bool = False,
+        periodic: bool = True,
     ) -> None:
         arr = _load_images(images)
         if arr.ndim == 3:
@@ -531,11 +550,14 @@ class ImageBank:
         self._images = arr
         self.symmetries = bool(symmetries)
         self.normalize = None if normalize == "none" else normalize
+        self.translations = bool(translations)
+        self.periodic = bool(periodic)
 
     def __repr__(self) -> str:
         return (
             f"ImageBank({len(self)} images of {self.npix}x{self.npix}, "
-            f"symmetries={self.symmetries}, normalize={self.normalize!r})"
+            f"symmetries={self.symmetries}, translations={self.translations}, "
+            f"periodic={self.periodic}, normalize={self.normalize!r})"
         )
 
     def __len__(self) -> int:
@@ -550,17 +572,73 @@ class ImageBank:
     def npix(self) -> int:
         return int(self._images.shape[-1])
 
+    def subset(self, indices) -> ImageBank:
+        """A bank of the images at ``indices``, with the same draw settings."""
+        idx = np.asarray(indices, dtype=int)
+        return ImageBank(
+            self._images[idx],
+            symmetries=self.symmetries,
+            translations=self.translations,
+            periodic=self.periodic,
+        )
+
+    def split(self, n_second: int, what: str = "the bank") -> tuple[ImageBank, ImageBank]:
+        """Two banks of disjoint images: the first ``M - n_second`` and the last ``n_second``.
+
+        Raises
+        ------
+        ValueError
+            When either part would be empty; the message says how many images are needed.
+        """
+        if isinstance(n_second, bool) or not isinstance(n_second, int | np.integer):
+            raise ValueError(
+                f"the number of images to split off must be an integer, got {n_second!r}"
+            )
+        n_second = int(n_second)
+        if n_second < 1 or len(self) < n_second + 1:
+            need = max(n_second, 1) + 1
+            raise ValueError(
+                f"{what} holds {len(self)} image(s), too few to give {max(n_second, 1)} to the "
+                f"variance stage and at least 1 to the mean stage: it needs at least {need} "
+                f"images (raise synthesis.n_images to {need - 1} or more, or lower "
+                "augment.var_images)"
+            )
+        cut = len(self) - n_second
+        return self.subset(range(cut)), self.subset(range(cut, len(self)))
+
+    def _windows(self, patch: FlatPatch, rng, pick: np.ndarray) -> np.ndarray:
+        n_img, npix = self.npix, patch.npix
+        if not self.translations:
+            return self._images[pick][..., :npix, :npix].copy()
+        if self.periodic:
+            oy = rng.integers(n_img, size=len(pick))
+            ox = rng.integers(n_img, size=len(pick))
+        else:
+            oy = rng.integers(n_img - npix + 1, size=len(pick))
+            ox = rng.integers(n_img - npix + 1, size=len(pick))
+        rows = (oy[:, None] + np.arange(npix)[None, :]) % n_img  # (n, npix)
+        cols = (ox[:, None] + np.arange(npix)[None, :]) % n_img
+        imgs = self._images[pick]  # (n, 2, n_img, n_img)
+        k = np.arange(len(pick))[:, None, None, None]
+        c = np.arange(2)[None, :, None, None]
+        return imgs[k, c, rows[:, None, :, None], cols[:, None, None, :]]
+
     def draw(self, patch: FlatPatch, rng, n: int) -> np.ndarray:
-        """Random images (each under a random D4 symmetry), shape (n, 2, npix, npix), uK."""
+        """Random windows of random images (each under a random D4 symmetry), uK.
+
+        Shape (n, 2, npix, npix).
+        """
         n = _check_n(n)
-        if self.npix != patch.npix:
+        if self.npix < patch.npix or (self.npix != patch.npix and not self.translations):
             raise ValueError(
                 f"the image bank holds {self.npix}x{self.npix} images but the patch is "
                 f"{patch.npix}x{patch.npix}; synthesize or cut images at the patch size"
+                + (" (or larger, with translations)" if self.npix < patch.npix else "")
+                + ("" if self.npix < patch.npix else ", or enable translations")
             )
         rng = as_generator(rng)
         pick = rng.integers(len(self), size=n)
-        out = self._images[pick].copy()
+        out = self._windows(patch, rng, pick)
         if self.symmetries:
             from skymoments.maps.symmetry import N_SYMMETRIES, apply_symmetry_qu
 

@@ -223,6 +223,49 @@ class Scenario:
             )
         return power(self.patch)
 
+    def target_variance_bounds(self) -> tuple[np.ndarray, np.ndarray]:
+        """Per-pixel bounds of the posterior variance of the target E and B, uK^2.
+
+        Ceiling: the prior variance of one target pixel at the top of the prior support of
+        ``r`` and ``A_lens``. For a periodic stationary field the pixel variance is
+        ``mean_k C(k) / Omega_pix`` (Parseval with ``<|X_k|^2> = C npix^2 / Omega_pix``); the
+        spectrum grows with both amplitudes, so that is the largest prior variance. The
+        posterior variance of a Gaussian signal given ``d`` never exceeds it, and on average
+        no posterior variance does (law of total variance).
+
+        Floor: the posterior pixel variance when everything but the white noise is known,
+        the signal at the bottom of the prior support and the noise at its lowest:
+        ``mean_k S N / (S + N) / Omega_pix`` (the Wiener posterior variance). Knowing more
+        can only lower the expected posterior variance, so the true one is above it on
+        average. With noise-free data it is 0.
+
+        Returns
+        -------
+        floor, ceiling : ndarray, shape (2,), uK^2, for (E, B)
+        """
+
+        def top(name):
+            lo, hi = self.priors[name].support
+            return (
+                hi
+                if np.isfinite(hi)
+                else self.priors[name].mean() + 5 * np.sqrt(max(self.priors[name].var(), 0.0))
+            )
+
+        omega = self.patch.omega_pix
+        ee_hi, bb_hi = self.signal_power_2d(top("r"), top("a_lens"))
+        ceiling = np.array([np.mean(ee_hi), np.mean(bb_hi)]) / omega
+        ee_lo, bb_lo = self.signal_power_2d(
+            self.priors["r"].support[0], self.priors["a_lens"].support[0]
+        )
+        noise = self.noise_power_2d(self.priors["noise_uk_arcmin"].support[0])
+        floor = []
+        for s in (ee_lo, bb_lo):
+            tot = s + noise
+            post = np.divide(s * noise, tot, out=np.zeros_like(tot), where=tot > 0)
+            floor.append(np.mean(post) / omega)
+        return np.array(floor), ceiling
+
     def is_gaussian_fixed(self) -> bool:
         """True when every prior is fixed and the foreground is Gaussian.
 

@@ -1,4 +1,11 @@
-"""Judge a trained posterior on fresh draws of a scenario and log the report into a run."""
+"""Judge a trained posterior on fresh draws of a scenario and log the report into a run.
+
+Three independent sets, each from its own seed stream (``skymoments.sky.seeds``):
+training draws (stream ``train``); the validation set (stream ``val``: early stopping,
+checkpoint choice, the sweep objective, ``compare`` ranking), whose figures are logged
+under ``valid/``; and the test set (stream ``eval``), whose figures are the reported
+``calib/*`` and ``eval/*`` and choose nothing.
+"""
 
 from __future__ import annotations
 
@@ -12,6 +19,48 @@ from skymoments.study.baselines import baselines
 
 # Metrics shown in the end-of-run summary table (the metric contract's).
 SUMMARY_KEYS = CONTRACT_SUMMARY_KEYS
+
+# Prefix of the validation set's figures; the test set's carry none.
+VALID_PREFIX = "valid/"
+SETS_NOTE = (
+    "calib/* and eval/*: the test set (stream eval), which chose nothing; valid/*: the "
+    "validation set (stream val) of early stopping, checkpoint choice and the objective"
+)
+
+
+def patch_flags(model, data_qu):
+    """Per-patch out-of-range ``(flag, score)`` from the data alone, or (None, None).
+
+    From the model's recorded training-input range (``model.input_range``); a model
+    trained before it was recorded has none.
+    """
+    method = getattr(model, "out_of_range", None)
+    return method(data_qu) if method is not None else (None, None)
+
+
+def evaluate_validation(cfg: DictConfig, run, result, scenario, image: np.ndarray) -> dict:
+    """Figures of the validation set (``valid/...``) from a training result; logged.
+
+    The validation set is the one early stopping and checkpoint choice already used
+    (``result.val_*``, stream ``val``); numbers only, no figures.
+    """
+    from skymoments.calibration.report import evaluate_posterior
+
+    wiener, _ = baselines(cfg, scenario, image) if cfg.eval.wiener else (None, None)
+    flagged, _ = patch_flags(result.model, result.val_data_qu)
+    report = evaluate_posterior(
+        result.val_target_eb,
+        result.val_data_qu,
+        result.mean_eb,
+        result.std_eb,
+        scenario.patch,
+        wiener=wiener,
+        prefix=VALID_PREFIX,
+        make_figures=False,
+        flagged=flagged,
+    )
+    run.log_metrics(report.metrics)
+    return report.metrics
 
 
 def evaluate_and_log(
@@ -42,6 +91,7 @@ def evaluate_and_log(
     patch = scenario.patch
     test = scenario.draw_components(rng, int(n))
     mean, std = predict_moments(model, test["data_qu"])
+    flagged, score = patch_flags(model, test["data_qu"])
     wiener, exact = baselines(cfg, scenario, image) if cfg.eval.wiener else (None, None)
     report = evaluate_posterior(
         test["signal_eb"],
@@ -53,6 +103,7 @@ def evaluate_and_log(
         wiener=wiener,
         exact=exact,
         n_fg_bins=int(cfg.eval.fg_bins),
+        flagged=flagged,
     )
     run.log_metrics({**report.metrics, **(extra_metrics or {})})
     run.log_artifact(
@@ -62,7 +113,10 @@ def evaluate_and_log(
     for path, fig in report.figures.items():
         run.log_figure(fig, path)
     header = {"RUNID": run.run_id, "NAME": str(cfg.name), "SEED": int(cfg.seed), **(header or {})}
-    for written in write_posterior(out / "posterior", mean, std, patch, header=header):
+    written_files = write_posterior(
+        out / "posterior", mean, std, patch, header=header, patch_flag=flagged, patch_score=score
+    )
+    for written in written_files:
         run.log_artifact(str(written), artifact_path="maps")
     return report.metrics
 

@@ -7,7 +7,7 @@ import time
 import numpy as np
 from omegaconf import DictConfig, OmegaConf
 
-from skymoments.study.evaluation import evaluate_and_log
+from skymoments.study.evaluation import SETS_NOTE, evaluate_and_log, evaluate_validation
 from skymoments.study.jobs import job_dir
 
 
@@ -35,7 +35,32 @@ def training_foreground(cfg: DictConfig, image: np.ndarray, run):
         run.log_metrics({"perf/bank_s": time.perf_counter() - t0})
         log_bank(run, out)
         images = np.concatenate([images, out["images"]], axis=0)
-    return ImageBank(images, symmetries=bool(aug.symmetries))
+    # Synthesized maps and draws of the generator are periodic; a given image is taken as
+    # periodic when its synthesis treats it so.
+    periodic = not cfg.synthesis.get("image") or cfg.synthesis.get("boundary") == "periodic"
+    return ImageBank(
+        images,
+        symmetries=bool(aug.symmetries),
+        translations=bool(aug.get("translations", False)),
+        periodic=bool(periodic),
+    )
+
+
+def split_for_stages(cfg: DictConfig, fg, run):
+    """The mean stage's and the variance stage's foregrounds: disjoint parts of a bank.
+
+    ``augment.var_images`` images (the last of the bank, never the training image itself)
+    go to the variance stage, the rest to the mean stage, so that the variance stage learns
+    from residuals on foregrounds the mean network never fitted; 0 shares the whole bank.
+    The split is recorded as the run param ``augment.split`` (``mean:<M1>,var:<M2>``).
+    """
+    n_var = int(cfg.augment.get("var_images", 0) or 0)
+    if fg is None or n_var == 0:
+        run.log_params({"augment.split": "shared"})
+        return fg, None
+    mean_fg, var_fg = fg.split(n_var, what="the training bank (image + syntheses)")
+    run.log_params({"augment.split": f"mean:{len(mean_fg)},var:{len(var_fg)}"})
+    return mean_fg, var_fg
 
 
 def training_config(cfg: DictConfig) -> DictConfig:
@@ -58,8 +83,13 @@ def run_study(cfg: DictConfig, run) -> dict[str, float]:
     out = job_dir()
     val_scenario = scenario_from_config(cfg)
     image, _, _ = training_image(cfg)
-    fg = training_foreground(cfg, image, run)
+    fg, var_fg = split_for_stages(cfg, training_foreground(cfg, image, run), run)
     train_scenario = scenario_from_config(training_config(cfg), foreground=fg)
+    var_train_scenario = (
+        None
+        if var_fg is None
+        else scenario_from_config(training_config(cfg), foreground=var_fg, cmb=train_scenario.cmb)
+    )
 
     result = train_moments(
         cfg,
@@ -67,11 +97,13 @@ def run_study(cfg: DictConfig, run) -> dict[str, float]:
         val_scenario,
         logger=run.lightning_logger(),
         workdir=out / "checkpoints",
+        var_train_scenario=var_train_scenario,
     )
     if global_rank() != 0:
         # Under DDP only rank zero evaluates and logs (the other ranks hold no MLflow run).
         return {}
     run.log_metrics({k: float(v) for k, v in result.perf.items()})
+    valid = evaluate_validation(cfg, run, result, val_scenario, image)
 
     # Calibration is judged on a fresh set of independent generator draws: neither trained
     # on nor used for early stopping.
@@ -87,6 +119,9 @@ def run_study(cfg: DictConfig, run) -> dict[str, float]:
         int(cfg.train.n_val),
         extra_metrics=result.metrics,
     )
+    print(f"figures: {SETS_NOTE}")
+    run.log_params({"eval.sets": SETS_NOTE})
+    metrics = {**valid, **metrics}
     run.log_model(result.model, name="model", registered_name=cfg.tracking.get("register_as"))
     return metrics
 
@@ -94,10 +129,14 @@ def run_study(cfg: DictConfig, run) -> dict[str, float]:
 def objective(cfg: DictConfig, metrics: dict[str, float]) -> float:
     """The scalar a sweeper minimizes (``hparams_search`` picks it; default eval/mse_B).
 
-    ``calibration_score`` is ``calib/score``: the mean over E and B of
-    ``|z_mean| + |z_std - 1| + mean coverage error`` (``calibration.metrics.component_score``).
+    Always read on the validation set (``valid/<objective>``), never on the test set whose
+    figures are reported. ``calibration_score`` is ``calib/score``: the mean over E and B of
+    ``|z_mean| + |z_std - 1| + mean coverage error`` (``calibration.metrics.component_score``),
+    a diagnostic without a sharpness term; ``calib/crps`` is the proper score.
     """
     key = cfg.get("objective", "eval/mse_B")
     if key == "calibration_score":
         key = "calib/score"
+    if not key.startswith("valid/"):
+        key = "valid/" + key
     return float(metrics.get(key, float("nan")))

@@ -1,0 +1,58 @@
+"""The out-of-range flag from the data alone: statistics, range, score, state dict.
+
+References: order statistics of exchangeable draws (a new draw from the training
+distribution exceeds the maximum of N training draws of one feature with probability
+1 / (N + 1)); numpy quantiles and the periodic Gaussian kernel's Fourier transform for the
+features; torch state_dict round trips.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import torch
+
+from skymoments.nets import InputRange
+
+
+def _maps(n, seed, amp=1.0):
+    rng = np.random.default_rng(seed)
+    return amp * rng.standard_normal((n, 2, 16, 16))
+
+
+def test_features_are_log_quantiles_of_the_polarized_intensity():
+    ir = InputRange(fwhm_pix=(0.0,), quantiles=(0.5, 0.99))
+    x = _maps(3, 0)
+    p = np.hypot(x[:, 0], x[:, 1]).reshape(3, -1)
+    want = np.log(np.quantile(p, [0.5, 0.99], axis=1).T)  # numpy is the reference
+    np.testing.assert_allclose(ir.features(x).numpy(), want, rtol=1e-12)
+    assert ir.feature_names() == ["log_P_q0.5_fwhm0", "log_P_q0.99_fwhm0"]
+
+
+def test_flag_fires_rarely_in_range_and_always_on_brighter_data():
+    ir = InputRange().fit(_maps(200, 1))
+    # Exchangeability: per feature P(new > max of 200) = 1/201; over 6 features at most
+    # 6/201 = 3% of in-distribution maps (fewer, the features are correlated).
+    inside = ir.flag(_maps(400, 2))
+    assert inside.mean() < 0.06
+    # Three times brighter data lie far above every training patch.
+    assert ir.flag(_maps(20, 3, amp=3.0)).all()
+    assert np.all(ir.score(_maps(20, 3, amp=3.0)) > 0)
+    # Fainter data are not an extrapolation into brighter foregrounds: not flagged.
+    assert not ir.flag(_maps(20, 4, amp=0.5)).any()
+
+
+def test_range_travels_in_the_state_dict_and_refuses_bad_input():
+    ir = InputRange().fit(_maps(50, 5))
+    fresh = InputRange()
+    fresh.load_state_dict(ir.state_dict())
+    x = _maps(7, 6, amp=1.5)
+    np.testing.assert_array_equal(fresh.score(x), ir.score(x))
+    with pytest.raises(ValueError, match="no input-range statistics"):
+        InputRange().score(x)
+    bad = x.copy()
+    bad[0, 0, 0, 0] = np.nan
+    with pytest.raises(ValueError, match="NaN"):
+        ir.score(bad)
+    with pytest.raises(ValueError, match=r"\(n, 2, ny, nx\)"):
+        ir.score(torch.zeros(2, 16, 16))
