@@ -233,7 +233,7 @@ def _compose(overrides):
 
 
 @pytest.mark.parametrize(
-    ("name", "objective"), [("lr_width", "eval/mse_B"), ("calibration", "calibration_score")]
+    ("name", "objective"), [("lr_width", "eval/mse_B"), ("calibration", "calib/crps")]
 )
 def test_hparams_search_configs_pick_the_trials_sweeper_and_parse(name, objective):
     cfg = _compose(["experiment=smoke", f"hparams_search={name}"])
