@@ -502,17 +502,18 @@ def run_prediction(
     centres = None
     if kind == "healpix":
         nside_out = _check_healpix(inp, patch, opts)
-        notes = []
-        centres = _centres(inp, patch, opts, notes.append)
-        # Every check passed: from here on, one line per long step.
-        say(f"read {input_path} (NSIDE {inp.nside}) in {time.perf_counter() - started:.1f} s")
+        notes = [f"read {input_path} (NSIDE {inp.nside}) in {time.perf_counter() - started:.1f} s"]
         if inp.convention != "COSMO":
-            say(f"converted Q/U from {inp.convention} to COSMO (U sign flipped)")
-        for note in notes:
-            say(note)
+            notes.append(f"converted Q/U from {inp.convention} to COSMO (U sign flipped)")
+        centres = _centres(inp, patch, opts, notes.append)
     else:
         check_patch_geometry(inp, patch, model=label)
+        # unit conversions, mirrored axes, Q/U frame changes
+        notes = [f"{input_path.name}: {note}" for note in inp.notes]
     device = _device(str(opts.device))
+    # Every check passed: from here on, one line per long step.
+    for note in notes:
+        say(note)
 
     # --- compute, all checks passed ---------------------------------------------------
     if kind == "healpix":
@@ -525,12 +526,17 @@ def run_prediction(
     model = _load(source, cfg.tracking).to(device)
     say(f"forward pass on {len(data)} patch(es) ({device})")
     mean, std = predict_moments(model, data, batch_size=opts.batch_size, device=device)
+    # Per-patch flag from the data alone: outside the training inputs' recorded range.
+    patch_flag, patch_score = model.out_of_range(data)
     hp_maps = None
     if kind == "healpix":
         say(f"projecting {len(mean)} patch(es) back onto HEALPix NSIDE {nside_out}")
         hp_maps = project_to_healpix(mean, std, centres, patch, nside_out, opts.interpolation)
 
     prov = _provenance(source, inp, centres, nside_out)
+    if patch_flag is not None:
+        prov["out_of_range_patches"] = int(patch_flag.sum())
+        say(f"{int(patch_flag.sum())} of {len(patch_flag)} patch(es) outside the training range")
     result = PredictionResult(
         mean_eb=mean,
         std_eb=std,
@@ -561,6 +567,8 @@ def run_prediction(
             healpix_maps=hp_maps,
             titles=titles,
             quicklook_rows=opts.quicklook_rows,
+            patch_flag=patch_flag,
+            patch_score=patch_score,
         )
 
     if not opts.log_run:
