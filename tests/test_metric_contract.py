@@ -55,3 +55,15 @@ def test_calibration_score_is_resolved_once_for_every_reader():
     assert objective_value("eval/mse_B", {"eval/mse_B": float("nan")}) is None
     # compare ranks by the same number.
     assert resolve_objective("calibration_score").value(metrics) == pytest.approx(want)
+
+
+def test_the_sweep_objective_reads_the_validation_set_through_the_contract():
+    from omegaconf import OmegaConf
+
+    from skymoments.study.training import objective
+
+    metrics = {"valid/calib/score_E": 0.2, "valid/calib/score_B": 0.4, "calib/score_E": 9.0}
+    metrics |= {"valid/eval/mse_B": 3.0, "eval/mse_B": 1.0}
+    for name, want in (("calibration_score", 0.3), ("eval/mse_B", 3.0), ("valid/eval/mse_B", 3.0)):
+        assert objective(OmegaConf.create({"objective": name}), metrics) == pytest.approx(want)
+    assert math.isnan(objective(OmegaConf.create({"objective": "calib/crps"}), metrics))

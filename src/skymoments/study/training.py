@@ -130,13 +130,14 @@ def objective(cfg: DictConfig, metrics: dict[str, float]) -> float:
     """The scalar a sweeper minimizes (``hparams_search`` picks it; default eval/mse_B).
 
     Always read on the validation set (``valid/<objective>``), never on the test set whose
-    figures are reported. ``calibration_score`` is ``calib/score``: the mean over E and B of
-    ``|z_mean| + |z_std - 1| + mean coverage error`` (``calibration.metrics.component_score``),
-    a diagnostic without a sharpness term; ``calib/crps`` is the proper score.
+    figures are reported. A metric name or ``calibration_score`` (the mean over E and B of
+    ``|z_mean| + |z_std - 1| + mean coverage error``, a diagnostic without a sharpness term;
+    ``calib/crps`` is the proper score), resolved by the metric contract as ``compare``
+    resolves it (:func:`skymoments.metric_contract.objective_value`); NaN, a failed trial to
+    the sweeper, when the run lacks it.
     """
-    key = cfg.get("objective", "eval/mse_B")
-    if key == "calibration_score":
-        key = "calib/score"
-    if not key.startswith("valid/"):
-        key = "valid/" + key
-    return float(metrics.get(key, float("nan")))
+    from skymoments.metric_contract import objective_value
+
+    name = str(cfg.get("objective", "eval/mse_B")).removeprefix("valid/")
+    value = objective_value(name, metrics, prefix="valid/")
+    return float("nan") if value is None else value
