@@ -56,3 +56,25 @@ def test_range_travels_in_the_state_dict_and_refuses_bad_input():
         ir.score(bad)
     with pytest.raises(ValueError, match=r"\(n, 2, ny, nx\)"):
         ir.score(torch.zeros(2, 16, 16))
+
+
+def test_posterior_files_carry_the_flag_per_patch(tmp_path):
+    # astropy.io.fits reads the table back; numpy the npz.
+    from astropy.io import fits
+
+    from skymoments.calibration.report import write_posterior
+    from skymoments.maps.geometry import FlatPatch
+
+    ir = InputRange().fit(_maps(50, 7))
+    data = np.concatenate([_maps(2, 8), _maps(1, 9, amp=4.0)])
+    flag, score = ir.flag(data), ir.score(data)
+    assert flag.tolist()[-1] is True
+    mean = np.zeros((3, 2, 16, 16))
+    npz, fit = write_posterior(
+        tmp_path / "post", mean, mean + 1.0, FlatPatch(16, 3.0), patch_flag=flag, patch_score=score
+    )
+    with np.load(npz) as z:
+        np.testing.assert_array_equal(z["patch_flag"], flag)
+        np.testing.assert_allclose(z["patch_score"], score)
+    with fits.open(fit) as hdul:
+        np.testing.assert_array_equal(hdul["OUTOFRANGE"].data["FLAG"], flag)

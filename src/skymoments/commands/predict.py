@@ -45,6 +45,12 @@ def print_summary(result) -> None:
     med = np.median(result.std_eb, axis=(0, 2, 3))
     table.add_row("rms of the posterior mean", f"{rms[0]:.4g}", f"{rms[1]:.4g}")
     table.add_row("median posterior std", f"{med[0]:.4g}", f"{med[1]:.4g}")
+    flagged = result.provenance.get("out_of_range_patches")
+    if flagged is not None:
+        # From the data alone: patches outside the training inputs' range (flag per patch
+        # in the npz/FITS outputs); their error bars are an extrapolation.
+        n = len(result.mean_eb)
+        table.add_row("patches outside the training range", f"{flagged} of {n}", "")
     console.print(table)
     for path in result.paths.values():
         console.print(f"wrote {path}")

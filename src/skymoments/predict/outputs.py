@@ -337,6 +337,8 @@ def write_outputs(
     healpix_maps: np.ndarray | None = None,
     titles: list[str] | None = None,
     quicklook_rows: int = 4,
+    patch_flag=None,
+    patch_score=None,
 ) -> dict[str, Path]:
     """Write every output of a prediction, atomically (module docstring).
 
@@ -358,6 +360,10 @@ def write_outputs(
     titles : list of str, optional
         Quick-look row labels.
     quicklook_rows : int
+    patch_flag, patch_score : ndarray, shape (m,), optional
+        Per-patch out-of-range flag and score of the model's training-input range
+        (``PosteriorMoments.out_of_range``): ``patch_flag``/``patch_score`` in the npz, the
+        ``OUTOFRANGE`` table in the FITS file.
 
     Returns
     -------
@@ -381,7 +387,9 @@ def write_outputs(
     try:
         staged: dict[str, Path] = {}
         stem = staging / paths["npz"].stem
-        staged["npz"], staged["fits"] = write_posterior(stem, mean_eb, std_eb, patch, prov)
+        staged["npz"], staged["fits"] = write_posterior(
+            stem, mean_eb, std_eb, patch, prov, patch_flag=patch_flag, patch_score=patch_score
+        )
         _stamp_fits(staged["fits"], cards)
         fig = quicklook_figure(mean_eb, std_eb, patch, titles=titles, max_rows=quicklook_rows)
         staged["png"] = staging / paths["png"].name
