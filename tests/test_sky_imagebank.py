@@ -69,3 +69,17 @@ def test_split_gives_disjoint_parts_and_a_clear_error_when_too_small():
         bank.split(5)
     with pytest.raises(ValueError, match="needs at least 2 images"):
         ImageBank(imgs[:1]).split(1)
+
+
+def test_quickstart_split_refuses_a_small_bank_before_any_synthesis():
+    from hydra import compose, initialize_config_dir
+
+    from skymoments.config import conf_dir
+    from skymoments.study.training import check_split
+
+    with initialize_config_dir(config_dir=str(conf_dir()), version_base="1.3"):
+        cfg = compose("config", overrides=["experiment=quickstart", "synthesis.n_images=2"])
+        ok = compose("config", overrides=["experiment=quickstart"])
+    with pytest.raises(ValueError, match=r"augment\.var_images=4 needs a bank of at least 5"):
+        check_split(cfg)
+    check_split(ok)  # the quickstart's own bank splits

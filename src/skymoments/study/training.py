@@ -46,6 +46,21 @@ def training_foreground(cfg: DictConfig, image: np.ndarray, run):
     )
 
 
+def check_split(cfg: DictConfig) -> None:
+    """Refuse, before any synthesis, a bank too small for ``augment.var_images``."""
+    aug = cfg.augment
+    n_var = int(aug.get("var_images", 0) or 0)
+    if aug.source == "generator" or n_var == 0:
+        return
+    n_bank = 1 + (int(cfg.synthesis.n_images) if aug.get("bank") else 0)
+    if n_bank < n_var + 1:
+        raise ValueError(
+            f"augment.var_images={n_var} needs a bank of at least {n_var + 1} images (the "
+            f"training image + synthesis.n_images >= {n_var}), but it holds {n_bank}; raise "
+            "synthesis.n_images or lower augment.var_images (0 shares the bank)"
+        )
+
+
 def split_for_stages(cfg: DictConfig, fg, run):
     """The mean stage's and the variance stage's foregrounds: disjoint parts of a bank.
 
@@ -83,6 +98,7 @@ def run_study(cfg: DictConfig, run) -> dict[str, float]:
     out = job_dir()
     val_scenario = scenario_from_config(cfg)
     image, _, _ = training_image(cfg)
+    check_split(cfg)
     fg, var_fg = split_for_stages(cfg, training_foreground(cfg, image, run), run)
     train_scenario = scenario_from_config(training_config(cfg), foreground=fg)
     var_train_scenario = (
