@@ -50,7 +50,13 @@ def test_coarse_start_runs_both_stages_and_lowers_the_starting_loss():
     img = _image()
     common = dict(n_images=2, batch=2, n_scales=3, n_orientations=2, scale_reach=1, tol=0.0)
     plain = synthesize(img, SynthesisSettings(max_iter=2, start="gaussian", **common), seed=4)
-    coarse = synthesize(img, SynthesisSettings(max_iter=2, start="coarse", **common), seed=4)
+    seen = []
+    coarse = synthesize(
+        img, SynthesisSettings(max_iter=2, start="coarse", **common), seed=4, progress=seen.append
+    )
+    # Progress is reported from both stages, the half-resolution one first.
+    stages = [d["stage"] for d in seen[:-1]]
+    assert stages == ["coarse", "fine"], stages
     assert plain.coarse_iterations == [] and coarse.coarse_iterations == [2]
     # The same Gaussian field (the same initial loss) with its large scales already fitted
     # starts the full-resolution stage lower.

@@ -130,7 +130,8 @@ def progress_bar(max_iter: int, console=None):
                 task,
                 completed=info["iteration"],
                 total=info["max_iter"],
-                batch=f"{min(info['batch'] + 1, info['n_batches'])}/{info['n_batches']}",
+                batch=f"{min(info['batch'] + 1, info['n_batches'])}/{info['n_batches']}"
+                + (" (half resolution)" if info.get("stage") == "coarse" else ""),
                 loss=info["loss"],
             )
 

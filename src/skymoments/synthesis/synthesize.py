@@ -385,6 +385,28 @@ def _lbfgs(wph, goal, start, max_iter, tol, chunk, device, dtype, report=None):
     return x.detach().cpu().numpy(), l0, losses(), done, history
 
 
+def _coarse_report(progress, ib: int, n_batches: int, settings):
+    """The progress callback of a batch's half-resolution stage (``stage="coarse"``)."""
+    if progress is None:
+        return None
+
+    def report(done, cur):
+        progress(
+            {
+                "batch": ib,
+                "n_batches": n_batches,
+                "iteration": done,
+                "max_iter": settings.max_iter,
+                "loss": cur,
+                "images_done": ib * settings.batch,
+                "n_images": settings.n_images,
+                "stage": "coarse",
+            }
+        )
+
+    return report
+
+
 def coarse_possible(npix: int, n_scales: int) -> bool:
     """Whether a coarse-to-fine start applies: a half-resolution map of at least 16 pixels
     that still holds ``n_scales - 1 >= 2`` dyadic scales."""
@@ -438,8 +460,9 @@ def synthesize(
         Seeds the Gaussian starts (the optimization itself is deterministic).
     progress : callable, optional
         Called with a dict (``batch``, ``n_batches``, ``iteration``, ``max_iter``,
-        ``loss`` = mean loss per image of the batch, ``images_done``, ``n_images``)
-        every 10 iterations and at the end of each batch.
+        ``loss`` = mean loss per image of the batch, ``images_done``, ``n_images``,
+        ``stage`` = ``"coarse"`` or ``"fine"``) every 10 iterations of either stage and at
+        the end.
     chunk : int
         Maps per evaluation of the moments inside a batch (memory, not results).
     device, dtype
@@ -497,7 +520,15 @@ def synthesize(
             tc, wph_c, goal_c = coarse
             low = fourier_resample(start, tc.shape[-1])
             xc, _, _, done_c, _ = _lbfgs(
-                wph_c, goal_c, low, settings.max_iter, settings.tol, chunk, device, dtype
+                wph_c,
+                goal_c,
+                low,
+                settings.max_iter,
+                settings.tol,
+                chunk,
+                device,
+                dtype,
+                _coarse_report(progress, ib, n_batches, settings),
             )
             start = replace_low_frequencies(start, xc)
             coarse_iters.append(done_c)
@@ -514,6 +545,7 @@ def synthesize(
                         "loss": cur,
                         "images_done": ib * settings.batch,
                         "n_images": settings.n_images,
+                        "stage": "fine",
                     }
                 )
 
