@@ -69,6 +69,17 @@ METRICS: tuple[MetricSpec, ...] = (
     MetricSpec("calib/cov997", "cov997", 0.9973, "ideal"),
     MetricSpec("calib/ks", "KS", 0.0, "min"),
     MetricSpec("calib/score", "calibration score", 0.0, "min"),
+    # Proper scores of the per-pixel Gaussian predictive (Gneiting & Raftery 2007, JASA
+    # 102:359): smaller is better, no fixed ideal (it depends on the problem).
+    MetricSpec("calib/crps", "CRPS", None, "min"),
+    MetricSpec("calib/nll", "NLL", None, "min"),
+    # The former calibration score under a name that says what it is (no sharpness term).
+    MetricSpec("calib/zcov_error", "z/coverage error", 0.0, "min"),
+    # z std in the extreme deciles of the predicted std (a calibrated posterior: 1 in each).
+    MetricSpec("calib/z_std_stddec_min", "z std decile min", 1.0, "ideal"),
+    MetricSpec("calib/z_std_stddec_max", "z std decile max", 1.0, "ideal"),
+    # Unflagged test maps only (inside the training inputs' range).
+    MetricSpec("calib/z_std_inrange", "z std in range", 1.0, "ideal"),
     MetricSpec("eval/mse", "MSE", None, "min"),
     MetricSpec("eval/mse_ratio_wiener", "MSE/Wiener", 1.0, "min"),
     MetricSpec("eval/mse_ratio_exact", "MSE/exact", 1.0, "min"),
@@ -108,6 +119,10 @@ SUMMARY_KEYS: tuple[str, ...] = tuple(
     "eval/mse_ratio_wiener",
     "eval/mse_ratio_exact",
     "eval/var_ratio_exact",
+    "calib/crps",
+    "calib/z_std_stddec_min",
+    "calib/z_std_stddec_max",
+    "calib/z_std_inrange",
 )
 
 
