@@ -2,15 +2,13 @@
 
 from __future__ import annotations
 
-from pathlib import Path
-
 import pytest
 import torch
+from hydra import compose, initialize_config_dir
 from omegaconf import OmegaConf
 
+from skymoments.config import conf_dir
 from skymoments.nets import DilatedResNet, SpectralNet, UNet, build_network
-
-CONF = Path(__file__).resolve().parents[1] / "conf" / "model"
 
 
 def _x(n=3, npix=16, seed=0, dtype=torch.float64):
@@ -147,7 +145,9 @@ def test_build_network_names_the_key_of_a_bad_choice_and_a_missing_target():
 
 @pytest.mark.parametrize("name", ["unet", "dilated_resnet", "spectral"])
 def test_model_configs_build_both_stages(name):
-    cfg = OmegaConf.load(CONF / f"{name}.yaml")
+    # The group files hold defaults lists (conf/model/net/*): compose them as Hydra does.
+    with initialize_config_dir(config_dir=str(conf_dir()), version_base="1.3"):
+        cfg = compose("run", overrides=[f"model={name}"]).model
     assert cfg.positivity in ("softplus", "logvar")
     for stage in ("mean", "variance"):
         net = build_network(cfg[stage], key=f"model.{stage}")

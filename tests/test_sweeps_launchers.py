@@ -110,8 +110,10 @@ def test_hparams_search_runs_trials_of_the_run_command(tmp_path):
     by_job = {int(c.data.tags["skymoments.job_num"]): c for c in children}
     for trial in results["trials"]:
         child = by_job[trial["job"]]
-        # The trial's value is what the job logged: the run command returns its objective.
-        assert trial["value"] == pytest.approx(child.data.metrics["eval/mse_B"], rel=1e-12)
+        # The trial's value is what the job logged on the validation set (the sets that
+        # choose, never the test set whose eval/* figures are reported).
+        assert trial["value"] == pytest.approx(child.data.metrics["valid/eval/mse_B"], rel=1e-12)
+        assert trial["value"] != child.data.metrics["eval/mse_B"]
         for key, value in trial["params"].items():
             assert child.data.params[key] == str(value)
     best = min(results["trials"], key=lambda t: t["value"])
