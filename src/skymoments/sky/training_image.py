@@ -1,7 +1,7 @@
 """The one training foreground image of a study, shape (2, n, n) in uK.
 
 A study trains on a foreground it knows from one image only: either a user's file
-(``synthesis.image``, read with :func:`skymoments.synthesis.sources.load_training_image`)
+(``synthesis.image``, read with :func:`skymoments.maps.training_file.load_training_image`)
 or one draw of the configured ``sky.foreground`` from the ``training_image`` seed stream.
 ``synthesize``, ``run`` and ``evaluate`` all take it from here, so the bank, the Wiener
 baseline and a re-evaluation see the same image.
@@ -14,6 +14,7 @@ from pathlib import Path
 import numpy as np
 
 from skymoments.maps.geometry import FlatPatch
+from skymoments.maps.training_file import load_training_image
 
 __all__ = ["training_image"]
 
@@ -34,9 +35,6 @@ def training_image(cfg) -> tuple[np.ndarray, str, FlatPatch]:
     node = cfg.get("synthesis") or {}
     patch = FlatPatch(int(cfg["patch"]["npix"]), float(cfg["patch"]["pixel_arcmin"]))
     if node.get("image"):
-        # Reading users' files is the maps/synthesis side's; imported here only when used.
-        from skymoments.synthesis.sources import load_training_image
-
         img = load_training_image(
             str(node["image"]),
             key=node.get("image_key"),

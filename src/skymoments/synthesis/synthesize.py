@@ -26,6 +26,7 @@ from dataclasses import asdict, dataclass, field, fields
 import numpy as np
 import torch
 
+from skymoments.maps.training_file import check_image_values
 from skymoments.synthesis.wavelets import check_bank_args
 from skymoments.synthesis.wph import WPHConfig, WPHStatistics, loss_per_image
 
@@ -196,36 +197,16 @@ def check_image(
 ) -> np.ndarray:
     """Validate a training image and return it as float64, shape (C, n, n).
 
+    The array checks are :func:`skymoments.maps.training_file.check_image_values`'s; the
+    wavelet bank's limits are added here.
+
     Raises
     ------
     ValueError
         Wrong shape, NaN/inf, a constant channel, a side below 2^n_scales, or scales/orientations
         out of range.
     """
-    arr = np.asarray(image)
-    if arr.ndim == 2:
-        arr = arr[None]
-    if arr.ndim != 3 or arr.shape[0] not in (1, 2) or arr.shape[1] != arr.shape[2]:
-        raise ValueError(
-            f"training image has shape {arr.shape}; expected (2, n, n) for Q/U (or E/B), "
-            "or (n, n) for a scalar map, square"
-        )
-    if not np.issubdtype(arr.dtype, np.number) or np.iscomplexobj(arr):
-        raise ValueError(f"training image must be real numbers, got dtype {arr.dtype}")
-    arr = arr.astype(np.float64)
-    if not np.all(np.isfinite(arr)):
-        bad = int(arr.size - np.count_nonzero(np.isfinite(arr)))
-        raise ValueError(
-            f"training image contains {bad} NaN or infinite pixels; fill or inpaint them first"
-        )
-    std = arr.std(axis=(1, 2))
-    scale = max(float(np.abs(arr).max()), 1e-300)
-    if np.any(std <= 1e-12 * scale) or np.any(std == 0):
-        raise ValueError(
-            "training image is constant in channel(s) "
-            f"{[int(i) for i in np.nonzero(std <= 1e-12 * scale)[0]]}: there is nothing to "
-            "synthesize; check that the right map or field was read"
-        )
+    arr = check_image_values(image)
     if n_scales is not None or n_orientations is not None:
         check_bank_args(
             arr.shape[1:],
