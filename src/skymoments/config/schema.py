@@ -155,15 +155,17 @@ def _check_prior(cfg: DictConfig) -> None:
 def _check_model(cfg: DictConfig) -> None:
     if "model" not in cfg:
         return
+    # The network sizes are checked by the networks' own builder (nets is standalone).
+    from skymoments.nets.build import check_sizes
+
     for stage in ("mean", "variance"):
         node = cfg.model.get(stage)
         if node is None:
             raise ConfigError(f"model.{stage} is missing; pick a model, e.g. model=unet")
-        for key in ("width", "depth", "n_blocks", "n_layers", "modes"):
-            if key in node and not (isinstance(node[key], int) and node[key] > 0):
-                raise ConfigError(
-                    f"model.{stage}.{key} must be a positive integer, got {node[key]!r}"
-                )
+        try:
+            check_sizes(node, f"model.{stage}")
+        except ValueError as err:
+            raise ConfigError(str(err)) from None
         pool = _pool_factor(node)
         npix = cfg.patch.npix if "patch" in cfg else None
         if pool > 1 and isinstance(npix, int) and npix % pool:

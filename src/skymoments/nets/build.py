@@ -13,6 +13,31 @@ from torch import nn
 POSITIVE_KEYS = ("width", "depth", "n_blocks", "n_layers", "modes", "in_channels", "out_channels")
 
 
+def check_sizes(cfg_node, key: str = "model.net") -> None:
+    """Refuse a size key (:data:`POSITIVE_KEYS`) of a network node that is not a positive integer.
+
+    The one check of network sizes: :func:`build_network` runs it, and so do the config
+    checks (``skymoments.config``) before any work.
+
+    Parameters
+    ----------
+    cfg_node : DictConfig or Mapping
+        The network node (``model.mean``, ...).
+    key : str
+        Dotted config path of the node, used in the message.
+
+    Raises
+    ------
+    ValueError
+        ``<key>.<name> must be a positive integer, got <value>``.
+    """
+    for name in POSITIVE_KEYS:
+        if name in cfg_node:
+            value = cfg_node[name]
+            if isinstance(value, bool) or not isinstance(value, int) or value <= 0:
+                raise ValueError(f"{key}.{name} must be a positive integer, got {value!r}")
+
+
 def build_network(cfg_node, key: str = "model.net") -> nn.Module:
     """Instantiate a network from a node with ``_target_`` (e.g. ``skymoments.nets.UNet``).
 
@@ -40,11 +65,7 @@ def build_network(cfg_node, key: str = "model.net") -> nn.Module:
             f"{key} must be a config node with a _target_ naming the network class, "
             "e.g. {_target_: skymoments.nets.UNet, depth: 3, width: 16}"
         )
-    for name in POSITIVE_KEYS:
-        if name in cfg_node:
-            value = cfg_node[name]
-            if isinstance(value, bool) or not isinstance(value, int) or value <= 0:
-                raise ValueError(f"{key}.{name} must be a positive integer, got {value!r}")
+    check_sizes(cfg_node, key)
     try:
         net = instantiate(cfg_node)
     except InstantiationException as err:
