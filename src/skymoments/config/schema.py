@@ -28,6 +28,8 @@ class ConfigError(ValueError):
 class PatchSchema:
     npix: int = 64
     pixel_arcmin: float = 3.0
+    # Pixels drawn on each side and cut away (sky.scenario.Scenario); 0: periodic maps.
+    margin: int = 0
 
 
 @dataclass
@@ -44,6 +46,7 @@ class PriorSchema:
 class EvalSchema:
     wiener: bool = True
     fg_bins: int = 4
+    edge_px: int = 4
 
 
 @dataclass
@@ -62,6 +65,7 @@ class TrainSchema:
     gradient_clip_val: float | None = 1.0
     variance_loss: str = "gaussian_nll"
     variance_bounds: bool = True
+    variance_calibration: str = "validation_scale"
     optimizer: Any = None
     scheduler: Any = None
 
@@ -105,6 +109,12 @@ def _check_patch(cfg: DictConfig) -> None:
     _positive(patch.pixel_arcmin, "patch.pixel_arcmin", "set patch.pixel_arcmin=<arcmin per pixel>")
     if patch.npix < 4:
         raise ConfigError(f"patch.npix must be an integer >= 4, got {patch.npix}")
+    from skymoments.sky.scenario import check_margin
+
+    try:
+        check_margin(patch.margin)
+    except ValueError as err:
+        raise ConfigError(f"{err}; e.g. patch.margin=16") from None
     side_deg = patch.npix * patch.pixel_arcmin / 60.0
     if side_deg > 180.0:
         raise ConfigError(
@@ -203,6 +213,13 @@ def _check_train(cfg: DictConfig) -> None:
     for key in ("batch_size", "steps_per_epoch", "n_val", "max_epochs_mean", "max_epochs_var"):
         if not train[key] > 0:
             raise ConfigError(f"train.{key} must be a positive integer, got {train[key]!r}")
+    choices = {
+        "variance_loss": ("gaussian_nll", "squared"),
+        "variance_calibration": ("none", "validation_scale"),
+    }
+    for key, allowed in choices.items():
+        if train[key] not in allowed:
+            raise ConfigError(f"train.{key}={train[key]!r}; choose one of {', '.join(allowed)}")
     opt = cfg.train.get("optimizer")
     lr = opt.get("lr") if isinstance(opt, DictConfig) else None
     if lr is not None and (
@@ -222,6 +239,12 @@ def _check_eval(cfg: DictConfig) -> None:
         raise ConfigError(
             f"eval.fg_bins must be a positive integer (bins of foreground amplitude the "
             f"calibration is split into), got {node.fg_bins}; e.g. eval.fg_bins=4"
+        )
+    npix = cfg.patch.npix if "patch" in cfg else None
+    if node.edge_px < 1 or (isinstance(npix, int) and 2 * node.edge_px >= npix):
+        raise ConfigError(
+            f"eval.edge_px must be an integer >= 1 leaving an interior (2 * edge_px < "
+            f"patch.npix = {npix}), got {node.edge_px}; e.g. eval.edge_px=4"
         )
 
 

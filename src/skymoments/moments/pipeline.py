@@ -23,6 +23,7 @@ from omegaconf import DictConfig, OmegaConf
 from skymoments.moments.data import MomentsDataModule, stream_generator
 from skymoments.moments.distributed import with_job_ddp
 from skymoments.moments.perf import DataWaitTimer, network_step, resolve_parallelism
+from skymoments.moments.recalibration import recalibrate
 from skymoments.moments.stages import MeanModule, VarianceModule
 from skymoments.nets import ChannelScaler, PosteriorMoments, build_network
 from skymoments.sky.seeds import torch_seed
@@ -376,6 +377,7 @@ def train_moments(
     model = model.cpu().eval()
     val = dm.val_draw()
     mean_eb, std_eb = predict_moments(model, val.data_qu, batch_size=int(dm.val_batch_size))
+    std_eb, scale_metrics = recalibrate(cfg, model, val.target_eb, mean_eb, std_eb)
 
     perf = {}
     for name, st in (("mean", s1), ("var", s2)):
@@ -406,7 +408,11 @@ def train_moments(
         mean_eb=mean_eb,
         std_eb=std_eb,
         perf=perf,
-        metrics={"val/loss_mean_best": s1["best_score"], "val/loss_var_best": s2["best_score"]},
+        metrics={
+            "val/loss_mean_best": s1["best_score"],
+            "val/loss_var_best": s2["best_score"],
+            **scale_metrics,
+        },
         checkpoints={"mean": s1["best_path"], "var": s2["best_path"]},
     )
 

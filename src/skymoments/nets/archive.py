@@ -161,6 +161,10 @@ def _owner(model: nn.Module, key: str) -> tuple[nn.Module, str]:
     return owner, name
 
 
+# Buffers a model stored before they existed may lack; their built default is kept.
+OPTIONAL_BUFFERS = ("variance_scale",)
+
+
 def _load_state(model: nn.Module, state: Mapping[str, torch.Tensor]) -> None:
     """Load ``state`` strictly; a buffer may differ in shape from its freshly built default.
 
@@ -170,7 +174,8 @@ def _load_state(model: nn.Module, state: Mapping[str, torch.Tensor]) -> None:
     """
     own = model.state_dict()
     extra = sorted(set(state) - set(own))
-    missing = sorted(set(own) - set(state))
+    # Buffers added after a model was stored keep their defaults (``variance_scale``: 1).
+    missing = sorted(set(own) - set(state) - set(OPTIONAL_BUFFERS))
     buffers = {name for name, _ in model.named_buffers()}
     if extra or missing:
         raise ValueError(

@@ -109,8 +109,10 @@ class PosteriorMoments(nn.Module):
         concatenated: its ``in_channels`` is then input + target channels). Kept as a
         buffer, so a model rebuilt from its state dict feeds its variance network the same.
 
-    The bounds of the log-variance (``positivity.log_var_min``/``log_var_max``) and the
-    input-range statistics (``input_range``) are buffers too.
+    The bounds of the log-variance (``positivity.log_var_min``/``log_var_max``), the
+    input-range statistics (``input_range``) and the per-channel ``variance_scale`` (1 until
+    :func:`skymoments.moments.recalibration.fit_variance_scale` sets it from validation
+    maps) are buffers too.
     """
 
     def __init__(
@@ -131,6 +133,7 @@ class PosteriorMoments(nn.Module):
         self.positivity = Positivity(positivity, eps, target_scaler.n_channels)
         self.register_buffer("variance_sees_mean", torch.tensor(bool(variance_sees_mean)))
         self.input_range = InputRange()
+        self.register_buffer("variance_scale", torch.ones(1, target_scaler.n_channels, 1, 1))
 
     def out_of_range(self, data_qu):
         """Per-patch ``(flag, score)`` from the data alone, or ``(None, None)``.
@@ -163,8 +166,13 @@ class PosteriorMoments(nn.Module):
         return self.positivity.log_variance(self.var_net(self.variance_input(x, mean)))
 
     def scaled_var(self, x: torch.Tensor, mean: torch.Tensor | None = None) -> torch.Tensor:
-        """Posterior variance in scaled target units (positive) from scaled data."""
-        return self.positivity(self.var_net(self.variance_input(x, mean)))
+        """Posterior variance in scaled target units (positive) from scaled data.
+
+        The variance network's output times ``variance_scale`` (per channel; 1 unless set).
+        """
+        raw = self.positivity(self.var_net(self.variance_input(x, mean)))
+        scale = getattr(self, "variance_scale", None)
+        return raw if scale is None else raw * scale
 
     def forward(self, data_qu: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor]:
         """Posterior moments of E/B given Q/U data.
