@@ -54,3 +54,28 @@ def test_bad_setting_is_refused_before_work(tmp_path):
     assert proc.returncode != 0
     assert "2^n_scales" in proc.stderr
     assert not (tmp_path / "banks").exists() or not list((tmp_path / "banks").glob("*.npz"))
+
+
+def test_synthesis_progress_prints_plain_lines_when_not_a_terminal():
+    import io
+
+    from rich.console import Console
+
+    from skymoments.synthesis.pipeline import progress_bar
+
+    buf = io.StringIO()
+    console = Console(file=buf, force_terminal=False, width=200)
+    with progress_bar(120, console=console) as progress:
+        for stage in ("coarse", "fine"):
+            for it in range(1, 121):
+                progress(
+                    {"iteration": it, "max_iter": 120, "batch": 0, "n_batches": 2,
+                     "loss": 1.0 / it, "stage": stage}
+                )
+    lines = buf.getvalue().splitlines()
+    # One line at the start of each stage, every 50 iterations and at the last: 1, 50,
+    # 100, 120 per stage; no bar control characters in a log file.
+    assert len(lines) == 8
+    assert lines[0].startswith("synthesis batch 1/2 (half resolution): iter 1/120")
+    assert lines[-1].startswith("synthesis batch 1/2: iter 120/120, loss 0.008333")
+    assert "\x1b" not in buf.getvalue()

@@ -8,6 +8,7 @@ bank key and the ``synth/...`` metrics are the same in both; the training image 
 from __future__ import annotations
 
 import contextlib
+import time
 
 import numpy as np
 from omegaconf import DictConfig, OmegaConf
@@ -114,6 +115,10 @@ def progress_bar(max_iter: int, console=None):
     from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 
     console = console or Console(stderr=True)
+    if not console.is_terminal:
+        # A log file or pipe: one plain line per batch stage and every 50 iterations.
+        yield _line_progress(console)
+        return
     with Progress(
         TextColumn("[bold]synthesis[/] batch {task.fields[batch]}"),
         BarColumn(),
@@ -136,6 +141,29 @@ def progress_bar(max_iter: int, console=None):
             )
 
         yield progress
+
+
+def _line_progress(console, every: int = 50):
+    """The synthesis callback for output that is not a terminal: a plain line at times."""
+    t0 = time.perf_counter()
+    last = {"key": None}
+
+    def progress(info: dict) -> None:
+        key = (info["batch"], info.get("stage"))
+        it = int(info["iteration"])
+        if key == last["key"] and it % every and it < int(info["max_iter"]):
+            return
+        last["key"] = key
+        stage = " (half resolution)" if info.get("stage") == "coarse" else ""
+        batch = f"{min(info['batch'] + 1, info['n_batches'])}/{info['n_batches']}"
+        console.print(
+            f"synthesis batch {batch}{stage}: iter {it}/{int(info['max_iter'])}, "
+            f"loss {float(info['loss']):.4g}, {time.perf_counter() - t0:.0f} s",
+            highlight=False,
+            soft_wrap=True,
+        )
+
+    return progress
 
 
 def log_bank(run, out: dict) -> None:
