@@ -5,7 +5,8 @@
 
 Each row adds one change to the row above it, from the former protocol (squared variance
 loss, unbounded log-variance, variance network on the data alone, no translations, one bank
-shared by both stages) to the committed quickstart. Every row runs twice: with
+shared by both stages, no validation-set variance scale) to the committed quickstart.
+Every row runs twice: with
 ``augment=oracle`` (fresh generator foregrounds for every training pair, the upper bound)
 and with the quickstart's own ``augment=synthesis`` (the single image and its WPH bank).
 The figures are those of the test set (``calib/*``, ``eval/*``: the ``eval`` stream, which
@@ -33,6 +34,7 @@ BEFORE = [
     "model.variance.in_channels=2",
     "augment.translations=false",
     "augment.var_images=0",
+    "train.variance_calibration=none",
 ]
 ROWS = {
     "before": [],
@@ -41,6 +43,7 @@ ROWS = {
     "sees_mean": ["model.variance_sees_mean=true", "model.variance.in_channels=4"],
     "translations": ["augment.translations=true"],
     "split": ["augment.var_images=4"],
+    "scale": ["train.variance_calibration=validation_scale"],
 }
 QUICK = ["train.max_epochs_mean=4", "train.max_epochs_var=3", "train.steps_per_epoch=20"]
 KEYS = (
@@ -52,6 +55,7 @@ KEYS = (
     ("dec max", "calib/z_std_stddec_max"),
     ("mse/W", "eval/mse_ratio_wiener"),
     ("crps", "calib/crps"),
+    ("scale", "valid/variance_scale"),
 )
 
 
