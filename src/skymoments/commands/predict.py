@@ -66,7 +66,7 @@ def main(cfg: DictConfig) -> None:
     logging.getLogger("healpy").setLevel(logging.WARNING)
 
     try:
-        validate(cfg)
+        validate(cfg, command="predict")
         from skymoments.predict.pipeline import run_prediction
 
         result = run_prediction(cfg, default_out=_job_dir())
