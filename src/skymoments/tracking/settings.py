@@ -25,6 +25,7 @@ from pathlib import Path
 from typing import Any
 
 from omegaconf import DictConfig, OmegaConf
+from omegaconf.errors import OmegaConfBaseException
 
 __all__ = [
     "TrackingSettings",
@@ -110,17 +111,34 @@ def _as_plain(node: Any) -> dict[str, Any]:
     if isinstance(node, DictConfig):
         plain = OmegaConf.to_container(node, resolve=True, throw_on_missing=False)
         assert isinstance(plain, dict)
+        _unset_as_none(node, plain)
         return plain
     if isinstance(node, Mapping):
-        return dict(node)
+        # Through OmegaConf, so a "???" in a plain mapping is MISSING as in a composed config
+        # (a mapping holding values OmegaConf cannot hold is read as it is).
+        try:
+            return _as_plain(OmegaConf.create(dict(node)))
+        except (OmegaConfBaseException, ValueError):
+            return dict(node)
     raise ValueError(
         f"tracking settings must be a mapping (the cfg.tracking node), got {type(node).__name__};"
         " pass cfg.tracking, the whole cfg, or a tracking URI string"
     )
 
 
+def _unset_as_none(node: DictConfig, plain: dict[str, Any]) -> None:
+    """Mandatory values left unset (OmegaConf's MISSING) read as None, nested nodes too."""
+    for key in node.keys():
+        if OmegaConf.is_missing(node, key):
+            plain[key] = None
+        elif isinstance(plain.get(key), dict):
+            child = node._get_node(key)
+            if isinstance(child, DictConfig):
+                _unset_as_none(child, plain[key])
+
+
 def _missing(value: Any) -> bool:
-    return value is None or value == "???" or value == ""
+    return value is None or value == ""
 
 
 def resolve_tracking(
