@@ -290,7 +290,8 @@ def evaluate_run(
     overrides = list(overrides or [])
     ev = cfg.evaluate
     settings = settings_from(cfg.tracking)
-    # A run_id left unset (``???`` in conf/evaluate/default.yaml) reads as None.
+    # A run_id left unset (OmegaConf's MISSING: conf/evaluate/default.yaml makes it
+    # mandatory) reads as None, which _training_record refuses in one line.
     record = _training_record(settings, None if OmegaConf.is_missing(ev, "run_id") else ev.run_id)
     run_id = record.run_id
     out = Path(out) if out is not None else job_dir()
