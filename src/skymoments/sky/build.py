@@ -2,7 +2,7 @@
 
 Expected shape (``conf/`` follows it)::
 
-    patch: {npix: 64, pixel_arcmin: 3.0}
+    patch: {npix: 64, pixel_arcmin: 3.0, margin: 0}
     sky:
       cmb: {H0: 67.5, ombh2: 0.022, omch2: 0.122, As: 2.0e-9, ns: 0.965, tau: 0.06, lmax: 5000}
       foreground: {_target_: skymoments.sky.foregrounds.Filaments, amplitude_uk: 3.0, ...}
@@ -187,6 +187,7 @@ def scenario_from_config(
     """
     data = _plain(cfg)
     patch = patch_from_config(_section(data, "patch"))
+    margin = _section(data, "patch").get("margin") or 0  # configs before cut-outs: periodic
     sky = _section(data, "sky")
     if cmb is None:
         cosmo = CMBCosmology.from_mapping(_section(sky, "cmb", "sky."))
@@ -196,4 +197,4 @@ def scenario_from_config(
     beam = sky.get("beam_fwhm_arcmin", 0.0)
     beam = 0.0 if beam is None else float(beam)
     priors = priors_from_config(_section(data, "prior"))
-    return Scenario(patch, cmb, foreground, priors, beam_fwhm_arcmin=beam)
+    return Scenario(patch, cmb, foreground, priors, beam_fwhm_arcmin=beam, margin=margin)

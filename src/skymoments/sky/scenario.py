@@ -10,6 +10,11 @@ Generative model, per map i (all maps independent):
     N_i       ~ white noise of w_i uK-arcmin per Q and U
     data_i    = beam * (signal_i + F_i) + N_i
 
+With ``margin > 0`` every map is a cut-out: the CMB, its target E/B, the generator
+foreground and the beam are made on a parent patch of ``npix + 2 margin`` pixels a side (the
+same pixel size), and the central ``npix x npix`` is kept, so the maps are not periodic, as
+cuts of a real sky are not (see :meth:`Scenario.draw_components`).
+
 The per-map spectrum needs no grouping: the realization is one unit white-noise field per
 component, filtered by ``sqrt((A_lens C^lens + r C^tens) / Omega_pix)`` with that map's own
 amplitudes (sky.gaussian), which is exactly a Gaussian field of the summed spectrum.
@@ -27,20 +32,30 @@ import numpy as np
 from skymoments.maps.eb import eb_to_qu, qu_to_eb
 from skymoments.maps.geometry import FlatPatch
 from skymoments.sky.cmb import CMBSpectra
-from skymoments.sky.foregrounds import Foreground
+from skymoments.sky.foregrounds import Foreground, ImageBank
 from skymoments.sky.gaussian import gaussian_eb, interp_cl_2d
 from skymoments.sky.noise import apply_beam, beam_transfer, white_noise_qu
 from skymoments.sky.noise import noise_power_2d as _white_power_2d
 from skymoments.sky.priors import Fixed, Prior, prior_from_config
 from skymoments.sky.seeds import as_generator
 
-__all__ = ["PARAM_NAMES", "Scenario", "SkyDraw"]
+__all__ = ["PARAM_NAMES", "Scenario", "SkyDraw", "check_margin"]
 
 PARAM_NAMES: tuple[str, ...] = ("r", "a_lens", "a_fg", "noise_uk_arcmin")
 
 # Beam transfer values below this are treated as this when deconvolving noise power, so
 # that a wide beam gives a huge but finite noise power instead of inf.
 _MIN_BEAM = 1e-30
+
+
+def check_margin(margin) -> int:
+    """``margin`` as an int if it is a whole number of pixels >= 0, else a one-line ValueError."""
+    ok = not isinstance(margin, bool) and isinstance(margin, int | np.integer | float)
+    if not ok or not np.isfinite(margin) or margin < 0 or int(margin) != margin:
+        raise ValueError(
+            f"patch.margin must be a whole number of pixels >= 0 (0: periodic maps), got {margin!r}"
+        )
+    return int(margin)
 
 
 @dataclass(frozen=True)
@@ -79,6 +94,11 @@ class Scenario:
         must be >= 0 (amplitudes and a noise level).
     beam_fwhm_arcmin : float
         Gaussian beam applied to signal and foreground; 0 for none.
+    margin : int
+        Pixels drawn on each side of the patch and cut away (``patch.margin`` of a config):
+        0 draws periodic maps on the patch itself; > 0 draws cut-outs of a parent patch of
+        ``npix + 2 margin`` pixels (:meth:`draw_components`). The spectra, the noise power
+        and the variance bounds stay those of the periodic patch.
     """
 
     def __init__(
@@ -88,6 +108,7 @@ class Scenario:
         foreground: Foreground,
         priors: dict,
         beam_fwhm_arcmin: float = 0.0,
+        margin: int = 0,
     ) -> None:
         if not isinstance(patch, FlatPatch):
             raise ValueError(f"patch must be a FlatPatch, got {type(patch).__name__}")
@@ -135,12 +156,23 @@ class Scenario:
         self._bb_tens = interp_cl_2d(cmb.ell, cmb.bb_tensor, patch)
         self.beam_2d = beam_transfer(patch, beam)
         self.beam_2d.setflags(write=False)
+        self.margin = check_margin(margin)
+        self.parent_patch = (
+            FlatPatch(patch.npix + 2 * self.margin, patch.pixel_arcmin) if self.margin else patch
+        )
+        if self.margin:
+            parent = self.parent_patch
+            self._parent_spectra = tuple(
+                interp_cl_2d(cmb.ell, cl, parent)
+                for cl in (cmb.ee_lensed, cmb.bb_lensed, cmb.ee_tensor, cmb.bb_tensor)
+            )
 
     def __repr__(self) -> str:
         pri = ", ".join(f"{k}={v!r}" for k, v in self.priors.items())
+        cut = f", margin={self.margin}" if self.margin else ""
         return (
             f"Scenario({self.patch!r}, foreground={self.foreground!r}, "
-            f"beam_fwhm_arcmin={self.beam_fwhm_arcmin}, {pri})"
+            f"beam_fwhm_arcmin={self.beam_fwhm_arcmin}{cut}, {pri})"
         )
 
     # ------------------------------------------------------------------ spectra
@@ -305,11 +337,25 @@ class Scenario:
     def draw_components(self, rng, n: int, params: np.ndarray | None = None) -> dict:
         """Draw ``n`` maps with every component kept.
 
+        With ``margin = 0`` every map is periodic on the patch. With ``margin = m > 0``
+        every map is the central ``npix x npix`` cut of a parent patch of ``npix + 2 m``
+        pixels a side: the CMB Q/U is drawn on the parent, its target E/B is the E/B of the
+        parent Q/U (so the E/B of a pixel near the edge depends on Q/U outside the cut, as
+        on the sky), the generator foreground is drawn on the parent too, the beam is
+        applied on the parent, and then all are cut. The white noise is drawn on the cut.
+        A foreground that is an :class:`~skymoments.sky.foregrounds.ImageBank` is drawn at
+        the patch size as it is (periodic images stay periodic, a non-periodic bank gives
+        windows inside its images) and beamed on the patch: a bank of patch-sized images
+        has no content outside the patch to cut from, and the foreground is not the
+        target; with non-circular padding the network never sees its wrap-around.
+
         Parameters
         ----------
         rng : numpy.random.Generator or int
             Parameters, signal, foreground and noise use independent child streams of it,
             so e.g. the CMB realization for a seed does not depend on the foreground model.
+            A margin-``m`` draw's signal and generator foreground are the centre of the
+            margin-0 draw of the same seed on the parent patch.
         n : int
         params : ndarray, shape (n, 4), optional
             Use these parameters instead of drawing them.
@@ -337,23 +383,46 @@ class Scenario:
             if not np.all(np.isfinite(params)) or np.any(params < 0):
                 raise ValueError("params must be finite and >= 0")
         r, a_lens, a_fg, noise = params.T
-        ee, bb = self.signal_power_2d(r, a_lens)
-        signal_qu = eb_to_qu(gaussian_eb(self.patch, ee, bb, r_cmb, n), self.patch)
+        m = self.margin
+        grid = self.parent_patch  # the patch itself when m = 0
+        if m:
+            ee_l, bb_l, ee_t, bb_t = self._parent_spectra
+            r3, a3 = r[:, None, None], a_lens[:, None, None]
+            ee, bb = ee_l + r3 * ee_t, a3 * bb_l + r3 * bb_t
+        else:
+            ee, bb = self.signal_power_2d(r, a_lens)
+        signal_qu = eb_to_qu(gaussian_eb(grid, ee, bb, r_cmb, n), grid)
         # The target is the E/B content of the Q/U signal itself, so that it is exactly
         # recoverable from noise-free Q/U even where a grid's Q/U <-> E/B round trip is
         # not the identity (the self-conjugate corner mode of an even-sized grid).
-        signal_eb = qu_to_eb(signal_qu, self.patch)
-        fg = np.asarray(self.foreground.draw(self.patch, r_fg, n), dtype=float)
-        if fg.shape != (n, 2, self.patch.npix, self.patch.npix):
+        signal_eb = qu_to_eb(signal_qu, grid)
+        on_parent = m > 0 and not isinstance(self.foreground, ImageBank)
+        fg_grid = grid if on_parent else self.patch
+        fg = np.asarray(self.foreground.draw(fg_grid, r_fg, n), dtype=float)
+        if fg.shape != (n, 2, fg_grid.npix, fg_grid.npix):
             raise ValueError(
                 f"foreground {getattr(self.foreground, 'name', '?')!r} returned shape {fg.shape}, "
-                f"expected {(n, 2, self.patch.npix, self.patch.npix)}"
+                f"expected {(n, 2, fg_grid.npix, fg_grid.npix)}"
             )
         foreground_qu = a_fg[:, None, None, None] * fg
+        beam = self.beam_fwhm_arcmin
+
+        def cut(maps):
+            return np.ascontiguousarray(maps[..., m : m + self.patch.npix, m : m + self.patch.npix])
+
+        if m == 0 or on_parent:
+            sky = signal_qu + foreground_qu
+            if beam > 0:
+                sky = apply_beam(sky, grid, beam)
+            sky = cut(sky) if m else sky
+            foreground_qu = cut(foreground_qu) if m else foreground_qu
+        else:
+            sky_cmb = apply_beam(signal_qu, grid, beam) if beam > 0 else signal_qu
+            sky_fg = apply_beam(foreground_qu, self.patch, beam) if beam > 0 else foreground_qu
+            sky = cut(sky_cmb) + sky_fg
+        if m:
+            signal_qu, signal_eb = cut(signal_qu), cut(signal_eb)
         noise_qu = white_noise_qu(self.patch, noise, r_noise, n)
-        sky = signal_qu + foreground_qu
-        if self.beam_fwhm_arcmin > 0:
-            sky = apply_beam(sky, self.patch, self.beam_fwhm_arcmin)
         data_qu = sky + noise_qu
         return {
             "signal_eb": signal_eb,
