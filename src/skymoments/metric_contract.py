@@ -80,6 +80,18 @@ METRICS: tuple[MetricSpec, ...] = (
     MetricSpec("calib/z_std_stddec_max", "z std decile max", 1.0, "ideal"),
     # Unflagged test maps only (inside the training inputs' range).
     MetricSpec("calib/z_std_inrange", "z std in range", 1.0, "ideal"),
+    # The same in the patch's outer eval.edge_px-pixel band and in its interior
+    # (calibration.edges): calib/z_std_edge_C, calib/z_std_interior_C, ...
+    *(
+        MetricSpec(f"calib/{stem}_{region}", f"{label} {region}", ideal, "ideal")
+        for stem, label, ideal in (
+            ("z_mean", "z mean", 0.0),
+            ("z_std", "z std", 1.0),
+            ("cov68", "cov68", 0.6827),
+            ("cov95", "cov95", 0.9545),
+        )
+        for region in ("edge", "interior")
+    ),
     MetricSpec("eval/mse", "MSE", None, "min"),
     MetricSpec("eval/mse_ratio_wiener", "MSE/Wiener", 1.0, "min"),
     MetricSpec("eval/mse_ratio_exact", "MSE/exact", 1.0, "min"),

@@ -85,6 +85,7 @@ def evaluate_and_log(
     local folder the files are written to first; ``header`` adds provenance to the posterior
     files. Returns the report's metrics.
     """
+    from skymoments.calibration.edges import edge_calibration
     from skymoments.calibration.report import evaluate_posterior, write_posterior
     from skymoments.moments.pipeline import predict_moments
 
@@ -104,6 +105,10 @@ def evaluate_and_log(
         exact=exact,
         n_fg_bins=int(cfg.eval.fg_bins),
         flagged=flagged,
+    )
+    # The edge band and the interior apart (calib/z_std_edge_C, ...; calibration.edges).
+    report.metrics.update(
+        edge_calibration(test["signal_eb"], mean, std, int(cfg.eval.get("edge_px", 4)))
     )
     run.log_metrics({**report.metrics, **(extra_metrics or {})})
     run.log_artifact(
