@@ -86,3 +86,54 @@ def test_each_command_composes_only_its_own_nodes(command):
     others = {"predict", "compare", "evaluate", "settle"} - {command}
     assert not others & set(cfg), sorted(others & set(cfg))
     assert "tracking" in cfg and "name" in cfg
+
+
+def _compose_predict(*overrides: str):
+    with initialize_config_dir(config_dir=str(conf_dir()), version_base="1.3"):
+        return compose("predict", overrides=list(overrides))
+
+
+def test_predict_values_follow_the_registered_schema():
+    # conf/predict/default.yaml holds values for exactly the schema's keys, and the same
+    # defaults: the schema (ConfigStore schema/predict) is the one list of keys and types.
+    from dataclasses import asdict
+
+    from omegaconf import MISSING, OmegaConf
+
+    from skymoments.config.schema import PredictSchema
+
+    node = OmegaConf.to_container(_compose_predict().predict, throw_on_missing=False)
+    assert node == {**asdict(PredictSchema()), "model": MISSING, "input": MISSING}
+
+
+@pytest.mark.parametrize(
+    ("overrides", "message"),
+    [
+        ((), r"mandatory config values are not set: predict\.input, predict\.model \("),
+        (("predict.model=m",), r"not set: predict\.input \(.*e\.g\. predict\.input=map\.npy"),
+        (("predict.batch_size=abc",), r"predict\.batch_size: Value 'abc' .* Integer"),
+        (("predict.healpix.overlap=abc",), r"predict\.healpix\.overlap: Value 'abc'"),
+        (("+predict.foo=1",), r"unknown predict keys \['foo'\]; known: model, input"),
+        (("+predict.healpix.bar=1",), r"unknown predict\.healpix keys \['bar'\]; known: fields"),
+    ],
+)
+def test_predict_node_is_checked_by_its_schema(overrides, message):
+    set_both = ("predict.model=m", "predict.input=i")
+    extra = () if overrides in ((), ("predict.model=m",)) else set_both
+    cfg = _compose_predict(*extra, *overrides)
+    with pytest.raises(ConfigError, match=message) as err:
+        validate(cfg, command="predict")
+    assert "\n" not in str(err.value)
+    # The overrides every command line uses keep their names.
+    ok = _compose_predict(
+        *set_both, "predict.centres=[[30,-60]]", "predict.healpix.cut=exact", "predict.force=true"
+    )
+    validate(ok, command="predict")
+
+
+def test_a_mandatory_value_is_checked_by_its_own_command_only():
+    # The predict node's ??? values are the predict command's; other commands skip them.
+    cfg = _compose_predict()
+    validate(cfg, command="compare")
+    with pytest.raises(ConfigError, match=r"predict\.input, predict\.model"):
+        validate(cfg, command="predict")

@@ -15,8 +15,8 @@ from astropy.io import fits
 
 from skymoments.maps.geometry import FlatPatch
 from skymoments.maps.reader import read_image_file
-from skymoments.predict.inputs import read_input
 from skymoments.maps.training_file import load_training_image
+from skymoments.predict.inputs import read_input
 
 # A 4x4 image in the file's own array order (FITS data[row, column]), values in K_CMB.
 Q_FILE_UK = np.array(

@@ -277,6 +277,27 @@ def test_unset_and_unknown_options_are_refused(store, tmp_path, no_compute):
         pipeline.run_prediction(cfg)
 
 
+def test_options_are_the_typed_schema_and_their_choices_are_checked(store, tmp_path):
+    from skymoments.config.schema import PredictHealpixSchema
+
+    cfg = make_cfg(store, tmp_path, model="m", input="i", healpix={"cut": "exact", "hdu": 2})
+    opts = pipeline.PredictOptions.from_config(cfg.predict)
+    assert isinstance(opts.healpix, PredictHealpixSchema)
+    assert (opts.healpix.cut, opts.healpix.hdu, opts.healpix.fields) == ("exact", 2, ["Q", "U"])
+    # A plain mapping reads the same, the schema's defaults filling what it leaves out.
+    plain = pipeline.PredictOptions.from_config({"model": "m", "input": "i"})
+    assert plain.batch_size == 64 and plain.healpix.overlap == 0.25
+    bad = {
+        "format": ("zip", r"predict\.format='zip'; choose one of"),
+        "batch_size": (0, r"predict\.batch_size must be a positive integer, got 0"),
+        "healpix": ({"overlap": 1.0}, r"predict\.healpix\.overlap=1\.0 must be a number in \[0, 1"),
+        "model": (" ", r"predict\.model is empty"),
+    }
+    for key, (value, message) in bad.items():
+        with pytest.raises(ValueError, match=message):
+            pipeline.PredictOptions.from_config({"model": "m", "input": "i", key: value})
+
+
 # --- atomic outputs ----------------------------------------------------------------------
 
 
@@ -355,6 +376,25 @@ def test_command_prints_the_refusal_and_exits_2(store, tmp_path, no_compute, cap
     err = capsys.readouterr().err
     assert err.startswith("skymoments predict: ") and "trained on 16x16" in err
     assert "Traceback" not in err
+
+
+def test_command_refuses_unset_mandatory_values_in_one_line(store, no_compute, capsys):
+    from hydra import compose, initialize_config_dir
+
+    from skymoments.commands.predict import main
+
+    before = len(prediction_runs(store))
+    overrides = [f"tracking.root={store['tracking']['root']}", "tracking.experiment=training"]
+    with initialize_config_dir(config_dir=str(CONF), version_base="1.3"):
+        cfg = compose("predict", overrides=overrides)
+    with pytest.raises(SystemExit) as exit_info:
+        main.task(cfg)
+    assert exit_info.value.code == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "Traceback" not in err, err
+    assert err.startswith("skymoments predict: mandatory config values are not set: ")
+    assert "predict.input, predict.model" in err
+    assert len(prediction_runs(store)) == before
 
 
 # --- damaged or impossible input files: one line, exit 2, the store untouched ------------

@@ -10,11 +10,12 @@ runs before any work starts, on every node the command's config holds.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from collections.abc import Iterable
+from dataclasses import dataclass, field
 from typing import Any
 
 from hydra.core.config_store import ConfigStore
-from omegaconf import DictConfig, OmegaConf
+from omegaconf import MISSING, DictConfig, OmegaConf
 from omegaconf.errors import OmegaConfBaseException
 
 from skymoments.sky.cmb import CMBCosmology
@@ -70,6 +71,49 @@ class TrainSchema:
     scheduler: Any = None
 
 
+@dataclass
+class PredictHealpixSchema:
+    """``predict.healpix``: how a HEALPix input is read, cut and projected back."""
+
+    # The Q and U columns: names or 0-based indices.
+    fields: Any = field(default_factory=lambda: ["Q", "U"])
+    hdu: int = 1
+    nside: int | None = None
+    cut: str = "fast"
+    lmax: int | None = None
+    interpolation: str = "bilinear"
+    mask: str | None = None
+    min_abs_lat: float | None = None
+    overlap: float = 0.25
+
+
+@dataclass
+class PredictSchema:
+    """``skymoments predict``'s node; each key is documented in ``conf/predict/default.yaml``.
+
+    ``model`` and ``input`` are mandatory (``MISSING``); the choices and ranges of the
+    others are checked by ``skymoments.predict.pipeline.PredictOptions``.
+    """
+
+    model: str = MISSING
+    input: str = MISSING
+    format: str = "auto"
+    key: str | None = None
+    pixel_arcmin: float | None = None
+    convention: str = "patch"
+    # [[lon, lat], ...] in degrees, or the path of a two-column text file.
+    centres: Any = None
+    healpix: PredictHealpixSchema = field(default_factory=PredictHealpixSchema)
+    out: str | None = None
+    name: str = "posterior"
+    force: bool = False
+    batch_size: int = 64
+    device: str = "cpu"
+    quicklook_rows: int = 4
+    log_run: bool = True
+    experiment: str | None = "predictions"
+
+
 PRIOR_KEYS = ("r", "a_lens", "a_fg", "noise_uk_arcmin")
 TRACKING_KINDS = ("local", "server")
 # The typed schemas, registered once in Hydra's ConfigStore (group "schema").
@@ -80,6 +124,7 @@ SCHEMAS: dict[str, type] = {
     "prior": PriorSchema,
     "eval": EvalSchema,
     "train": TrainSchema,
+    "predict": PredictSchema,
 }
 for _name, _schema in SCHEMAS.items():
     ConfigStore.instance().store(group="schema", name=_name, node=_schema)
@@ -91,12 +136,101 @@ def _schema(name: str) -> DictConfig:
 
 def _typed(node: Any, schema: str, key: str) -> DictConfig:
     """Merge ``node`` onto the registered ``schema`` so a wrong type fails with its full key."""
+    base = _schema(schema)
+    _refuse_unknown(node, base, key)
     try:
-        return OmegaConf.merge(_schema(schema), node)
+        return OmegaConf.merge(base, node)
     except OmegaConfBaseException as err:
-        # One line: omegaconf's message spreads the key and the value over several.
+        # One line naming the full key: omegaconf's message spreads the key (relative to the
+        # node) and the value over several.
+        sub = getattr(err, "full_key", None)
         text = " ".join(str(err).split())
+        if sub:
+            text = text.split(" full_key:")[0]
+            raise ConfigError(f"invalid value for {key}.{sub}: {text}") from None
         raise ConfigError(f"invalid value under '{key}': {text}") from None
+
+
+def _refuse_unknown(node: Any, base: DictConfig, key: str) -> None:
+    """Name the keys of ``node`` that its schema ``base`` does not have (nested schemas too)."""
+    if not isinstance(node, DictConfig | dict):
+        return
+    # keys(), not ``in``: a MISSING value is "not in" its DictConfig.
+    known = [str(k) for k in base.keys()]
+    unknown = sorted(str(k) for k in node.keys() if k not in known)
+    if unknown:
+        raise ConfigError(f"unknown {key} keys {unknown}; known: {', '.join(known)}")
+    for name in node.keys():
+        child = base._get_node(name)
+        if isinstance(child, DictConfig) and OmegaConf.get_type(child) not in (dict, None):
+            _refuse_unknown(_value(node, name), child, f"{key}.{name}")
+
+
+def _value(node: Any, name: str) -> Any:
+    # A DictConfig's child node as it stands (an unset or interpolated value is not read).
+    return node._get_node(name) if isinstance(node, DictConfig) else node[name]
+
+
+def refuse_missing(keys: Iterable[str]) -> None:
+    """Refuse mandatory values left unset (OmegaConf's ``MISSING``, ``???`` in YAML).
+
+    Parameters
+    ----------
+    keys : iterable of str
+        Their full dotted keys, e.g. ``OmegaConf.missing_keys(cfg)``.
+
+    Raises
+    ------
+    ConfigError
+        One line naming every unset key, with an example value where one is known.
+    """
+    missing = sorted(set(keys))
+    if not missing:
+        return
+    examples = " ".join(f"{k}={MANDATORY_EXAMPLES[k]}" for k in missing if k in MANDATORY_EXAMPLES)
+    raise ConfigError(
+        "mandatory config values are not set: "
+        + ", ".join(missing)
+        + " (give them as key=value overrides"
+        + (f", e.g. {examples})" if examples else ")")
+    )
+
+
+# What to give for each mandatory value of the shipped configs (``???`` in conf/).
+MANDATORY_EXAMPLES = {
+    "predict.model": "models:/NAME/VERSION",
+    "predict.input": "map.npy",
+    "evaluate.run_id": "<32-character run id>",
+    "tracking.uri": "http://HOST:PORT",
+}
+
+
+def checked_node(node: Any, schema: str, key: str) -> DictConfig:
+    """``node`` typed by its registered ``schema``, every mandatory value set.
+
+    Parameters
+    ----------
+    node : DictConfig or mapping
+        The config node (``cfg.predict``).
+    schema : str
+        Its schema's name in the ConfigStore group ``schema`` (:data:`SCHEMAS`).
+    key : str
+        The node's full key, used in messages (``predict``).
+
+    Returns
+    -------
+    DictConfig
+        A new node of the schema's type (``OmegaConf.to_object`` gives the dataclass).
+
+    Raises
+    ------
+    ConfigError
+        An unknown key, a value of the wrong type, or a mandatory value left unset; one line
+        naming the full key.
+    """
+    typed = _typed(node, schema, key)
+    refuse_missing(f"{key}.{k}" for k in OmegaConf.missing_keys(typed))
+    return typed
 
 
 def _positive(value: Any, key: str, hint: str) -> None:
@@ -278,6 +412,12 @@ def _check_tracking(cfg: DictConfig) -> None:
             )
 
 
+def _check_predict(cfg: DictConfig) -> None:
+    # Keys and types; its mandatory values are the predict command's (COMMAND_NODES), and
+    # the choices and ranges are skymoments.predict.pipeline.PredictOptions'.
+    _typed(cfg.predict, "predict", "predict")
+
+
 # Each check runs on its node where the command's config holds it.
 CHECKS = {
     "patch": _check_patch,
@@ -287,6 +427,7 @@ CHECKS = {
     "train": _check_train,
     "eval": _check_eval,
     "tracking": _check_tracking,
+    "predict": _check_predict,
 }
 # Commands that draw from the study's scenario: they need patch, sky and prior.
 STUDY_COMMANDS = ("run", "simulate", "synthesis", "evaluate")
@@ -311,17 +452,12 @@ def validate(cfg: DictConfig, command: str | None = None) -> DictConfig:
     for key in ("patch", "sky", "prior") if command in STUDY_COMMANDS else ():
         if key not in cfg:
             raise ConfigError(f"the config has no '{key}' node; compose it from conf/config.yaml")
-    missing = {
+    # The one check of mandatory values: OmegaConf's own MISSING (``???`` in conf/).
+    refuse_missing(
         key
         for key in OmegaConf.missing_keys(cfg)
         if key.split(".")[0] not in COMMAND_NODES or key.split(".")[0] == command
-    }
-    if missing:
-        raise ConfigError(
-            "mandatory config values are not set: "
-            + ", ".join(sorted(missing))
-            + " (give them as key=value overrides)"
-        )
+    )
     for key, check in CHECKS.items():
         if key in cfg:
             check(cfg)

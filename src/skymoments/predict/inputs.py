@@ -378,7 +378,7 @@ def read_input(
     -------
     MapInput
     """
-    if path is None or not str(path).strip() or str(path) == "???":
+    if path is None or not str(path).strip():
         raise ValueError("predict.input is not set; give predict.input=<map file>")
     p = Path(str(path)).expanduser()
     if not p.is_file():

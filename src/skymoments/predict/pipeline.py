@@ -21,13 +21,14 @@ import datetime as _dt
 import os
 import sys
 import time
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field, fields
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 from omegaconf import DictConfig, ListConfig, OmegaConf
 
+from skymoments.config.schema import PredictSchema, checked_node
 from skymoments.maps.geometry import FlatPatch
 from skymoments.predict.inputs import (
     CONVENTIONS,
@@ -49,129 +50,72 @@ INTERPOLATIONS = ("bilinear", "nearest")
 # representation at the patch pixels (maps.sky_cuts); ``exact`` is the reference that
 # rotates the alms per centre (maps.healpix.cut_patch); ``bilinear`` interpolates pixels.
 CUTS = ("fast", "exact", "bilinear")
-# The keys of the predict.healpix node (flattened into PredictOptions).
-HEALPIX_KEYS = (
-    "fields",
-    "hdu",
-    "nside",
-    "cut",
-    "lmax",
-    "interpolation",
-    "mask",
-    "min_abs_lat",
-    "overlap",
-)
 # A HEALPix map whose pixels are much coarser than the model's holds no power on the scales
 # the network was trained to see: refused when the HEALPix pixel side exceeds this many
 # patch pixels (a rule of thumb, common practice: resolve a scale with >= 2 samples).
 COARSE_MAP_FACTOR = 2.0
 
 
-@dataclass(frozen=True)
-class PredictOptions:
-    """The ``predict`` config node, checked (keys documented in ``conf/predict/default.yaml``)."""
+@dataclass
+class PredictOptions(PredictSchema):
+    """The ``predict`` node, typed and checked.
 
-    model: str
-    input: str
-    format: str = "auto"
-    key: str | None = None
-    pixel_arcmin: float | None = None
-    convention: str = "patch"
-    centres: Any = None
-    fields: tuple = ("Q", "U")
-    hdu: int = 1
-    nside: int | None = None
-    cut: str = "fast"
-    lmax: int | None = None
-    interpolation: str = "bilinear"
-    mask: str | None = None
-    min_abs_lat: float | None = None
-    overlap: float = 0.25
-    out: str | None = None
-    name: str = "posterior"
-    force: bool = False
-    batch_size: int = 64
-    device: str = "cpu"
-    quicklook_rows: int = 4
-    log_run: bool = True
-    experiment: str | None = "predictions"
+    Its keys, types and defaults are those of :class:`skymoments.config.schema.PredictSchema`
+    (registered in Hydra's ConfigStore as ``schema/predict``; each key documented in
+    ``conf/predict/default.yaml``), with ``healpix`` a
+    :class:`~skymoments.config.schema.PredictHealpixSchema`. Build it with
+    :meth:`from_config`.
+    """
 
     @classmethod
     def from_config(cls, node: Any) -> PredictOptions:
-        """Build from ``cfg.predict`` (a DictConfig or a mapping); refuse bad values."""
+        """Build from ``cfg.predict`` (a DictConfig or a mapping); refuse bad values.
+
+        Raises
+        ------
+        ValueError
+            One line naming the key: no node, an unknown key, a value of the wrong type, an
+            unset mandatory value (:func:`skymoments.config.schema.checked_node`), or a
+            choice or range this command does not accept.
+        """
         if node is None:
             raise ValueError(
                 "the config has no 'predict' node; add `- predict: default` to the defaults of "
                 "conf/predict.yaml (or pass +predict=default)"
             )
-        if isinstance(node, DictConfig):
-            # Keys come with their full path when the node sits inside a config.
-            missing = sorted(
-                k if k.startswith("predict.") else f"predict.{k}"
-                for k in OmegaConf.missing_keys(node)
-            )
-            if missing:
-                raise ValueError(
-                    "mandatory predict values are not set: "
-                    + ", ".join(missing)
-                    + " (give them as key=value overrides, e.g. predict.model=models:/NAME/1 "
-                    "predict.input=map.npy)"
-                )
-            plain = OmegaConf.to_container(node, resolve=True)
-        else:
-            plain = dict(node)
-        hp_node = dict(plain.pop("healpix", None) or {})
-        known = {f for f in cls.__dataclass_fields__ if f not in HEALPIX_KEYS}
-        unknown = sorted(set(plain) - known)
-        if unknown:
-            raise ValueError(
-                f"unknown predict keys {unknown}; see conf/predict/default.yaml for the keys"
-            )
-        hp_known = set(HEALPIX_KEYS)
-        hp_unknown = sorted(set(hp_node) - hp_known)
-        if hp_unknown:
-            raise ValueError(
-                f"unknown predict.healpix keys {hp_unknown}; known: {sorted(hp_known)}"
-            )
-        for key in ("model", "input"):
-            if plain.get(key) in (None, "", "???"):
-                raise ValueError(f"predict.{key} is not set; give predict.{key}=...")
-        opts = cls(**plain, **hp_node)
+        plain = OmegaConf.to_object(checked_node(node, "predict", "predict"))
+        opts = cls(**{f.name: getattr(plain, f.name) for f in fields(plain)})
         opts._check()
         return opts
 
     def _check(self) -> None:
+        hp = self.healpix
+        for key in ("model", "input"):
+            if not str(getattr(self, key)).strip():
+                raise ValueError(f"predict.{key} is empty; give predict.{key}=...")
         if self.format not in FORMATS:
             raise ValueError(f"predict.format={self.format!r}; choose one of {FORMATS}")
         if str(self.convention).upper() not in {c.upper() for c in CONVENTIONS}:
             raise ValueError(f"predict.convention={self.convention!r}; choose one of {CONVENTIONS}")
-        if self.interpolation not in INTERPOLATIONS:
+        if hp.interpolation not in INTERPOLATIONS:
             raise ValueError(
-                f"predict.healpix.interpolation={self.interpolation!r}; choose {INTERPOLATIONS}"
+                f"predict.healpix.interpolation={hp.interpolation!r}; choose {INTERPOLATIONS}"
             )
-        for key in ("batch_size", "quicklook_rows", "hdu"):
-            value = getattr(self, key)
-            if isinstance(value, bool) or not isinstance(value, int) or value < 1:
-                prefix = "predict.healpix." if key == "hdu" else "predict."
-                raise ValueError(f"{prefix}{key} must be a positive integer, got {value!r}")
-        for key in ("nside", "lmax"):
-            value = getattr(self, key)
-            if value is not None and (isinstance(value, bool) or not isinstance(value, int)):
-                raise ValueError(f"predict.healpix.{key} must be an integer or null, got {value!r}")
-        for key in ("force", "log_run"):
-            if not isinstance(getattr(self, key), bool):
-                raise ValueError(f"predict.{key} must be true or false, got {getattr(self, key)!r}")
-        if self.cut not in CUTS:
-            raise ValueError(f"predict.healpix.cut={self.cut!r}; choose one of {CUTS}")
-        ov = self.overlap
-        if isinstance(ov, bool) or not isinstance(ov, int | float) or not 0 <= ov < 1:
-            raise ValueError(f"predict.healpix.overlap={ov!r} must be a number in [0, 1)")
-        cut = self.min_abs_lat
-        if cut is not None and (
-            isinstance(cut, bool) or not isinstance(cut, int | float) or not 0 <= cut < 90
+        for key, value in (
+            ("predict.batch_size", self.batch_size),
+            ("predict.quicklook_rows", self.quicklook_rows),
+            ("predict.healpix.hdu", hp.hdu),
         ):
+            if value < 1:
+                raise ValueError(f"{key} must be a positive integer, got {value!r}")
+        if hp.cut not in CUTS:
+            raise ValueError(f"predict.healpix.cut={hp.cut!r}; choose one of {CUTS}")
+        if not 0 <= hp.overlap < 1:
+            raise ValueError(f"predict.healpix.overlap={hp.overlap!r} must be a number in [0, 1)")
+        if hp.min_abs_lat is not None and not 0 <= hp.min_abs_lat < 90:
             raise ValueError(
-                f"predict.healpix.min_abs_lat={cut!r} must be a latitude in [0, 90) degrees or null"
+                f"predict.healpix.min_abs_lat={hp.min_abs_lat!r} must be a latitude in [0, 90) "
+                "degrees or null"
             )
 
 
@@ -260,11 +204,12 @@ def _check_healpix(inp: MapInput, patch: FlatPatch, opts: PredictOptions) -> int
 
     check_patch_fits(patch)
     nside_out = inp.nside
-    if opts.nside is not None:
-        nside_out = check_nside(opts.nside, "predict.healpix.nside")
-    if opts.lmax is not None and not 2 <= opts.lmax <= 3 * inp.nside - 1:
+    if opts.healpix.nside is not None:
+        nside_out = check_nside(opts.healpix.nside, "predict.healpix.nside")
+    lmax = opts.healpix.lmax
+    if lmax is not None and not 2 <= lmax <= 3 * inp.nside - 1:
         raise ValueError(
-            f"predict.healpix.lmax={opts.lmax} must lie in [2, {3 * inp.nside - 1}] for an nside "
+            f"predict.healpix.lmax={lmax} must lie in [2, {3 * inp.nside - 1}] for an nside "
             f"{inp.nside} map"
         )
     resol = hp.nside2resol(inp.nside, arcmin=True)
@@ -287,16 +232,16 @@ def _centres(inp: MapInput, patch: FlatPatch, opts: PredictOptions, say) -> np.n
     from skymoments.maps.tiling import inside_region, tile_region
 
     mask = None
-    if opts.mask not in (None, ""):
-        mask = _read_mask(Path(str(opts.mask)).expanduser())
+    if opts.healpix.mask not in (None, ""):
+        mask = _read_mask(Path(str(opts.healpix.mask)).expanduser())
     if opts.centres is None:
-        if mask is None and opts.min_abs_lat is None:
+        if mask is None and opts.healpix.min_abs_lat is None:
             return parse_centres(None)  # refuses: no centres and no region
-        centres = tile_region(patch, opts.overlap, mask, opts.min_abs_lat)
-        say(f"{len(centres)} centre(s) tile the region at overlap {opts.overlap:g}")
+        centres = tile_region(patch, opts.healpix.overlap, mask, opts.healpix.min_abs_lat)
+        say(f"{len(centres)} centre(s) tile the region at overlap {opts.healpix.overlap:g}")
         return centres
     centres = parse_centres(opts.centres)
-    keep = inside_region(centres, patch, mask, opts.min_abs_lat)
+    keep = inside_region(centres, patch, mask, opts.healpix.min_abs_lat)
     if not keep.all():
         skipped = ", ".join(f"({lon:g}, {lat:g})" for lon, lat in centres[~keep])
         if not keep.any():
@@ -429,12 +374,14 @@ def _log_prediction(run, opts: PredictOptions, result: PredictionResult) -> None
 
 
 def _plain_options(opts: PredictOptions) -> dict[str, Any]:
+    """The options by their config keys (``healpix.cut``, ...); lists as text."""
     out = {}
-    for key in opts.__dataclass_fields__:
-        value = getattr(opts, key)
-        if isinstance(value, (ListConfig, list, tuple)):
-            value = str(list(value))
-        out[key] = value
+    for key, value in asdict(opts).items():
+        items = value.items() if key == "healpix" else [(None, value)]
+        for sub, item in items:
+            if isinstance(item, (ListConfig, list, tuple)):
+                item = str(list(item))
+            out[key if sub is None else f"{key}.{sub}"] = item
     return out
 
 
@@ -494,8 +441,8 @@ def run_prediction(
         key=opts.key,
         pixel_arcmin=opts.pixel_arcmin,
         convention=opts.convention,
-        healpix_fields=opts.fields,
-        healpix_hdu=opts.hdu,
+        healpix_fields=opts.healpix.fields,
+        healpix_hdu=opts.healpix.hdu,
     )
     label = f"model {source.uri} (run {source.run_id})"
     nside_out = None
@@ -517,7 +464,9 @@ def run_prediction(
 
     # --- compute, all checks passed ---------------------------------------------------
     if kind == "healpix":
-        data = cut_patches(inp.maps_qu, centres, patch, opts.cut, opts.lmax, progress=say)
+        data = cut_patches(
+            inp.maps_qu, centres, patch, opts.healpix.cut, opts.healpix.lmax, progress=say
+        )
     else:
         data = inp.data_qu
     from skymoments.moments.pipeline import predict_moments
@@ -531,7 +480,9 @@ def run_prediction(
     hp_maps = None
     if kind == "healpix":
         say(f"projecting {len(mean)} patch(es) back onto HEALPix NSIDE {nside_out}")
-        hp_maps = project_to_healpix(mean, std, centres, patch, nside_out, opts.interpolation)
+        hp_maps = project_to_healpix(
+            mean, std, centres, patch, nside_out, opts.healpix.interpolation
+        )
 
     prov = _provenance(source, inp, centres, nside_out)
     if patch_flag is not None:

@@ -189,7 +189,7 @@ def resolve_model_source(ref: str, tracking: Any) -> ModelSource:
     from skymoments.tracking import get_run, model_uri, settings_from
     from skymoments.tracking.store import client_for
 
-    if ref is None or not str(ref).strip() or str(ref).strip() == "???":
+    if ref is None or not str(ref).strip():
         raise ValueError(
             "predict.model is not set; give predict.model=models:/NAME/VERSION, "
             "models:/NAME@alias or a run id"
