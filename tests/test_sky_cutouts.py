@@ -159,6 +159,25 @@ def test_an_image_bank_foreground_is_taken_as_it_is():
     np.testing.assert_allclose(a["data_qu"], want, rtol=0, atol=1e-12)
 
 
+def test_the_variance_ceiling_of_a_cutout_is_the_parent_pixel_variance():
+    # A cut-out pixel is a pixel of the parent's stationary field: its prior variance is
+    # mean_k C(k) / Omega_pix over the parent's modes (Parseval), the ceiling of the margin-0
+    # scenario on the parent patch; the floor is the periodic patch's, as before.
+    priors = {
+        "r": Uniform(0.0, 0.2),
+        "a_lens": Uniform(0.5, 1.5),
+        "a_fg": Fixed(1.0),
+        "noise_uk_arcmin": Fixed(1.0),
+    }
+    fg = GaussianPowerLaw()
+    cut = Scenario(FlatPatch(32, 4.0), make_cmb(), fg, priors, margin=8)
+    parent = Scenario(cut.parent_patch, make_cmb(), fg, priors)
+    periodic = Scenario(cut.patch, make_cmb(), fg, priors)
+    floor, ceiling = cut.target_variance_bounds()
+    np.testing.assert_allclose(ceiling, parent.target_variance_bounds()[1], rtol=1e-12)
+    np.testing.assert_array_equal(floor, periodic.target_variance_bounds()[0])
+
+
 # ------------------------------------------------------------------------- the spectrum
 def expected_windowed_power(c2d_parent, parent: FlatPatch, patch: FlatPatch, win):
     """Exact expectation of maps/spectra.py's windowed 2-D power of an npix cut.

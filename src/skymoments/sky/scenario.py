@@ -97,8 +97,9 @@ class Scenario:
     margin : int
         Pixels drawn on each side of the patch and cut away (``patch.margin`` of a config):
         0 draws periodic maps on the patch itself; > 0 draws cut-outs of a parent patch of
-        ``npix + 2 margin`` pixels (:meth:`draw_components`). The spectra, the noise power
-        and the variance bounds stay those of the periodic patch.
+        ``npix + 2 margin`` pixels (:meth:`draw_components`). The spectra and the noise
+        power helpers stay those of the periodic patch (for the baselines); the variance
+        ceiling is the cut-out's pixel variance (:meth:`target_variance_bounds`).
     """
 
     def __init__(
@@ -199,6 +200,15 @@ class Scenario:
         bb = a3 * self._bb_lens + r3 * self._bb_tens
         return ee, bb
 
+    def _drawn_power_2d(self, r, a_lens):
+        """:meth:`signal_power_2d` on the grid the CMB is drawn on (the parent patch)."""
+        if not self.margin:
+            return self.signal_power_2d(r, a_lens)
+        ee_l, bb_l, ee_t, bb_t = self._parent_spectra
+        r3 = np.asarray(r, dtype=float)[..., None, None]
+        a3 = np.asarray(a_lens, dtype=float)[..., None, None]
+        return ee_l + r3 * ee_t, a3 * bb_l + r3 * bb_t
+
     def mean_signal_power_2d(self) -> tuple[np.ndarray, np.ndarray]:
         """Prior average of the CMB EE and BB power, each (npix, npix), uK^2.
 
@@ -263,7 +273,9 @@ class Scenario:
         ``mean_k C(k) / Omega_pix`` (Parseval with ``<|X_k|^2> = C npix^2 / Omega_pix``); the
         spectrum grows with both amplitudes, so that is the largest prior variance. The
         posterior variance of a Gaussian signal given ``d`` never exceeds it, and on average
-        no posterior variance does (law of total variance).
+        no posterior variance does (law of total variance). A cut-out (``margin > 0``) is
+        part of the parent patch's field, so its pixel variance is the mean over the
+        parent's modes.
 
         Floor: the posterior pixel variance when everything but the white noise is known,
         the signal at the bottom of the prior support and the noise at its lowest:
@@ -285,7 +297,7 @@ class Scenario:
             )
 
         omega = self.patch.omega_pix
-        ee_hi, bb_hi = self.signal_power_2d(top("r"), top("a_lens"))
+        ee_hi, bb_hi = self._drawn_power_2d(top("r"), top("a_lens"))
         ceiling = np.array([np.mean(ee_hi), np.mean(bb_hi)]) / omega
         ee_lo, bb_lo = self.signal_power_2d(
             self.priors["r"].support[0], self.priors["a_lens"].support[0]
@@ -385,12 +397,7 @@ class Scenario:
         r, a_lens, a_fg, noise = params.T
         m = self.margin
         grid = self.parent_patch  # the patch itself when m = 0
-        if m:
-            ee_l, bb_l, ee_t, bb_t = self._parent_spectra
-            r3, a3 = r[:, None, None], a_lens[:, None, None]
-            ee, bb = ee_l + r3 * ee_t, a3 * bb_l + r3 * bb_t
-        else:
-            ee, bb = self.signal_power_2d(r, a_lens)
+        ee, bb = self._drawn_power_2d(r, a_lens)
         signal_qu = eb_to_qu(gaussian_eb(grid, ee, bb, r_cmb, n), grid)
         # The target is the E/B content of the Q/U signal itself, so that it is exactly
         # recoverable from noise-free Q/U even where a grid's Q/U <-> E/B round trip is
