@@ -62,6 +62,8 @@ class TrainSchema:
     # An integer, or "auto": measured at start-up (skymoments.moments.perf).
     num_workers: Any = 0
     torch_threads: Any = None
+    # The run id of a stopped run to continue (skymoments.tracking.resume).
+    resume: str | None = None
     fit_scalers_n: int = 256
     gradient_clip_val: float | None = 1.0
     variance_loss: str = "gaussian_nll"

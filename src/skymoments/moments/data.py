@@ -78,6 +78,7 @@ class TrainDrawStream(IterableDataset):
         seed: int,
         stage: int = 0,
         rank: int = 0,
+        first_epoch: int = 0,
     ) -> None:
         super().__init__()
         self.scenario = scenario
@@ -86,7 +87,8 @@ class TrainDrawStream(IterableDataset):
         self.seed = int(seed)
         self.stage = int(stage)
         self.rank = int(rank)
-        self._passes = 0
+        # A fit resumed from a checkpoint starts at its epoch, drawing what it would have.
+        self._passes = int(first_epoch)
 
     def __len__(self) -> int:
         return self.steps_per_epoch
@@ -230,6 +232,7 @@ class MomentsDataModule(pl.LightningDataModule):
             self.seed,
             stage=STAGES.index(self.stage),
             rank=self.rank,
+            first_epoch=int(getattr(getattr(self, "trainer", None), "current_epoch", 0) or 0),
         )
 
     def train_dataloader(self) -> DataLoader:

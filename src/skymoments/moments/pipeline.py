@@ -17,13 +17,22 @@ import lightning.pytorch as pl
 import numpy as np
 import torch
 from hydra.utils import instantiate
-from lightning.pytorch.callbacks import EarlyStopping, ModelCheckpoint, TQDMProgressBar
+from lightning.pytorch.callbacks import EarlyStopping, TQDMProgressBar
 from omegaconf import DictConfig, OmegaConf
 
 from skymoments.moments.data import MomentsDataModule, stream_generator
 from skymoments.moments.distributed import with_job_ddp
 from skymoments.moments.perf import DataWaitTimer, network_step, resolve_parallelism
 from skymoments.moments.recalibration import recalibrate
+from skymoments.moments.resume import (
+    DONE,
+    LAST,
+    StageCheckpoint,
+    adopt,
+    finished_stage,
+    stage_folder,
+    write_record,
+)
 from skymoments.moments.stages import MeanModule, VarianceModule
 from skymoments.nets import ChannelScaler, PosteriorMoments, build_network
 from skymoments.sky.seeds import torch_seed
@@ -203,14 +212,24 @@ def _check_variance_inputs(node, input_scaler, target_scaler, sees_mean: bool) -
         )
 
 
-def _fit_stage(module, dm, *, label, monitor, max_epochs, cfg, logger, callbacks, workdir):
-    """Fit one stage with checkpointing and early stopping; restore the best weights."""
-    ckpt = ModelCheckpoint(
+def _fit_stage(
+    module, dm, *, label, monitor, max_epochs, cfg, logger, callbacks, workdir, resume=None
+):
+    """Fit one stage with checkpointing and early stopping; restore the best weights.
+
+    ``resume``: a stopped run's folder of this stage (:mod:`skymoments.moments.resume`): a
+    stage it finished is not fitted again, one it interrupted goes on from its last epoch.
+    """
+    adopted = adopt(resume, workdir)
+    if adopted == DONE:
+        return finished_stage(module, workdir)
+    ckpt = StageCheckpoint(
         dirpath=str(workdir),
         filename="best",
         monitor=monitor,
         mode="min",
         save_top_k=1,
+        save_last=True,
         auto_insert_metric_name=False,
         enable_version_counter=False,
     )
@@ -234,19 +253,23 @@ def _fit_stage(module, dm, *, label, monitor, max_epochs, cfg, logger, callbacks
         warnings.filterwarnings("ignore", message=r".*module\(s\) in eval mode.*")
         # TrainDrawStream splits its steps over the workers itself, so its length is exact.
         warnings.filterwarnings("ignore", message=r".*`IterableDataset` has `__len__` defined.*")
-        trainer.fit(module, datamodule=dm)
+        # A resumed stage's folder holds the stopped run's checkpoints on purpose.
+        warnings.filterwarnings("ignore", message=r"Checkpoint directory .* exists and is not")
+        resume_at = str(Path(workdir) / LAST) if adopted else None
+        trainer.fit(module, datamodule=dm, ckpt_path=resume_at, weights_only=True)
     wall = time.perf_counter() - t0
     best = ckpt.best_model_path
     if best:
-        state = torch.load(best, map_location="cpu", weights_only=False)["state_dict"]
+        state = torch.load(best, map_location="cpu", weights_only=True)["state_dict"]
         module.load_state_dict(state)
-    best_score = ckpt.best_model_score
+    best_score = float(ckpt.best_model_score) if ckpt.best_model_score is not None else float("nan")
+    write_record(workdir, trainer.current_epoch, best_score, wall, timer)
     return {
         "timer": timer,
         "wall": wall,
         "epochs": trainer.current_epoch,
         "best_path": best,
-        "best_score": float(best_score) if best_score is not None else float("nan"),
+        "best_score": best_score,
     }
 
 
@@ -258,6 +281,7 @@ def train_moments(
     callbacks=(),
     workdir: str | Path = "checkpoints",
     var_train_scenario=None,
+    resume_from: str | Path | None = None,
 ) -> MomentsResult:
     """Train the mean stage, then the variance stage, and predict on the validation set.
 
@@ -283,6 +307,11 @@ def train_moments(
     var_train_scenario : skymoments.sky.Scenario, optional
         Training draws of the variance stage (default ``train_scenario``), e.g. on a part
         of the foreground bank disjoint from the mean stage's.
+    resume_from : path, optional
+        A stopped run's checkpoint folder (its ``workdir``) to continue: a stage it finished
+        is not trained again (its ``perf/*_<stage>`` are the ones it recorded), the stage it
+        interrupted resumes from its ``last.ckpt`` (its ``perf/*`` count the epochs trained
+        here, ``perf/epochs_<stage>`` all of them; :mod:`skymoments.moments.resume`).
 
     Returns
     -------
@@ -348,6 +377,7 @@ def train_moments(
         monitor="val/loss_mean",
         max_epochs=tr.max_epochs_mean,
         workdir=workdir / "mean",
+        resume=stage_folder(resume_from, "mean"),
         **common,
     )
 
@@ -371,6 +401,7 @@ def train_moments(
         monitor="val/loss_var",
         max_epochs=tr.max_epochs_var,
         workdir=workdir / "var",
+        resume=stage_folder(resume_from, "var"),
         **common,
     )
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import time
+from pathlib import Path
 
 import numpy as np
 from omegaconf import DictConfig, OmegaConf
@@ -87,8 +88,12 @@ def training_config(cfg: DictConfig) -> DictConfig:
     return out
 
 
-def run_study(cfg: DictConfig, run) -> dict[str, float]:
-    """Train, evaluate and log one study into the open tracked ``run``; return its metrics."""
+def run_study(cfg: DictConfig, run, resume_from=None) -> dict[str, float]:
+    """Train, evaluate and log one study into the open tracked ``run``; return its metrics.
+
+    ``resume_from``: a stopped run's job folder whose stage checkpoints this run continues
+    (``train_moments(resume_from=<job>/checkpoints)``).
+    """
     from skymoments.moments.pipeline import train_moments
     from skymoments.sky.build import scenario_from_config
     from skymoments.sky.seeds import streams
@@ -114,6 +119,7 @@ def run_study(cfg: DictConfig, run) -> dict[str, float]:
         logger=run.lightning_logger(),
         workdir=out / "checkpoints",
         var_train_scenario=var_train_scenario,
+        resume_from=None if resume_from is None else Path(resume_from) / "checkpoints",
     )
     if global_rank() != 0:
         # Under DDP only rank zero evaluates and logs (the other ranks hold no MLflow run).
