@@ -97,6 +97,9 @@ METRICS: tuple[MetricSpec, ...] = (
     MetricSpec("eval/mse_ratio_exact", "MSE/exact", 1.0, "min"),
     MetricSpec("eval/var_ratio_exact", "var/exact", 1.0, "ideal"),
     MetricSpec("eval/snr_gain", "SNR gain", None, "max"),
+    # The factor the validation set put on the predicted variance (moments.recalibration):
+    # 1 when the variance network was already calibrated on independent foregrounds.
+    MetricSpec("valid/variance_scale", "variance scale", 1.0, "ideal"),
 )
 _BY_STEM = {m.stem: m for m in METRICS}
 
@@ -135,6 +138,7 @@ SUMMARY_KEYS: tuple[str, ...] = tuple(
     "calib/z_std_stddec_min",
     "calib/z_std_stddec_max",
     "calib/z_std_inrange",
+    "valid/variance_scale",
 )
 
 
