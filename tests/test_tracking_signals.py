@@ -167,3 +167,96 @@ def test_sigkilled_run_is_found_by_its_stopped_heartbeat(tmp_path, store):
 def _cli(cwd, *args):
     cmd = [sys.executable, "-m", "skymoments.cli", *args]
     return subprocess.run(cmd, cwd=cwd, capture_output=True, text=True)
+
+
+# A sweep whose one job waits to be stopped (started through Hydra's basic launcher).
+SWEEP_APP = """
+import time
+from pathlib import Path
+
+import hydra
+
+from skymoments.tracking import run_job_safely, tracked_run
+
+
+def task(cfg):
+    with tracked_run(cfg, run_name=f"x={cfg.x}") as run:
+        Path(cfg.started).write_text(run.run_id)
+        while True:
+            time.sleep(0.05)
+
+
+@hydra.main(version_base="1.3", config_path=".", config_name="config")
+def main(cfg):
+    return run_job_safely(task, cfg)
+
+
+if __name__ == "__main__":
+    main()
+"""
+
+SWEEP_CONFIG = """
+x: 0
+started: started
+tracking: {kind: local, root: store, uri: null, artifact_location: null, experiment: sweeps,
+           register_as: null}
+hydra:
+  sweep: {dir: multirun/sweep}
+  callbacks:
+    sweep_tracking: {_target_: skymoments.tracking.hydra_callbacks.SweepTracking}
+"""
+
+
+def _sweep_runs(root):
+    client = mlflow.MlflowClient(tracking_uri=f"sqlite:///{root / 'mlflow.db'}")
+    exp = client.get_experiment_by_name("sweeps")
+    runs = client.search_runs([exp.experiment_id])
+    (parent,) = [r for r in runs if r.data.tags.get("skymoments.run_kind") == "sweep"]
+    (child,) = [r for r in runs if r.data.tags.get("mlflow.parentRunId") == parent.info.run_id]
+    return parent, child
+
+
+@pytest.mark.parametrize("signum", [signal.SIGKILL, signal.SIGTERM])
+def test_stopped_sweep_parent_is_lost_or_killed(tmp_path, signum):
+    from skymoments.compare.table import shown_status
+    from skymoments.tracking.liveness import find_lost_runs
+
+    (tmp_path / "app.py").write_text(SWEEP_APP)
+    (tmp_path / "config.yaml").write_text(SWEEP_CONFIG)
+    started = tmp_path / "started"
+    env = {**os.environ, "SKYMOMENTS_HEARTBEAT_S": str(HEARTBEAT_S)}
+    proc = subprocess.Popen(
+        [sys.executable, "app.py", "-m", "x=1", f"started={started}"],
+        cwd=tmp_path,
+        env=env,
+        stdout=subprocess.PIPE,
+        stderr=subprocess.PIPE,
+        text=True,
+        start_new_session=True,
+    )
+    root = tmp_path / "store"
+    # The job is running and the parent has beaten since it was created.
+    while proc.poll() is None:
+        if started.is_file():
+            parent, _ = _sweep_runs(root)
+            if int(parent.data.tags["skymoments.heartbeat"]) > parent.info.start_time:
+                break
+        time.sleep(0.2)
+    assert proc.poll() is None, proc.communicate()[1][-3000:]
+    assert float(parent.data.tags["skymoments.heartbeat_s"]) == HEARTBEAT_S
+    proc.send_signal(signum)
+    proc.communicate()
+    parent, child = _sweep_runs(root)
+    if signum == signal.SIGTERM:
+        # The job's run and the sweep's parent both say how they ended.
+        assert child.info.status == "KILLED"
+        assert parent.info.status == "KILLED"
+        assert parent.data.tags["skymoments.stopped_by"] == "SIGTERM"
+        return
+    # SIGKILL: both stay RUNNING, and both are lost once 4 periods have passed.
+    assert parent.info.status == child.info.status == "RUNNING"
+    last_ms = max(int(r.data.tags["skymoments.heartbeat"]) for r in (parent, child))
+    time.sleep(max(0.0, last_ms / 1000 + 4 * HEARTBEAT_S + 0.5 - time.time()))
+    lost, _ = find_lost_runs(f"sqlite:///{root / 'mlflow.db'}")
+    assert {r.run_id for r, _ in lost} == {parent.info.run_id, child.info.run_id}
+    assert {shown_status(r) for r, _ in lost} == {"LOST"}

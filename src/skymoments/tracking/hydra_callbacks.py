@@ -11,8 +11,11 @@ Add to the primary config::
 for the jobs (see :mod:`skymoments.tracking.sweep`); each job's
 :func:`~skymoments.tracking.tracked_run` then opens a child run. ``on_multirun_end`` tags the
 parent with its children's count and failures and marks it FINISHED. If the sweep itself
-dies (an exception escapes the launcher, Ctrl-C), an ``atexit`` hook marks the parent FAILED,
-so it is never left RUNNING.
+dies (an exception escapes the launcher), an ``atexit`` hook marks the parent FAILED, or
+KILLED when SIGTERM or SIGINT stopped a job (tag ``skymoments.stopped_by``), so it is never
+left RUNNING. While the sweep runs, the parent keeps a heartbeat like every run
+(:mod:`skymoments.tracking.liveness`), so a sweep whose process was SIGKILLed shows as LOST
+and ``skymoments settle`` can mark it.
 """
 
 from __future__ import annotations
@@ -26,6 +29,15 @@ from typing import Any
 from omegaconf import DictConfig, OmegaConf
 
 from skymoments.tracking.flatten import MAX_TAG_LENGTH, cap_value
+from skymoments.tracking.liveness import (
+    HEARTBEAT_PERIOD_TAG,
+    HEARTBEAT_TAG,
+    STOPPED_BY_TAG,
+    Heartbeat,
+    heartbeat_period_s,
+    now_ms,
+    stop_received,
+)
 from skymoments.tracking.settings import settings_from
 from skymoments.tracking.store import client_for, ensure_experiment, with_retries
 from skymoments.tracking.sweep import (
@@ -59,6 +71,12 @@ class SweepTracking(Callback):
         self._record: ParentRecord | None = None
         self._settings = None
         self._atexit = None
+        self._heartbeat: Heartbeat | None = None
+
+    def __getstate__(self) -> dict[str, Any]:
+        # Launchers that run jobs in other processes (joblib) pickle the callbacks with the
+        # job's context; the heartbeat thread stays in the sweep's own process.
+        return {**self.__dict__, "_heartbeat": None}
 
     def on_multirun_start(self, config: DictConfig, **kwargs: Any) -> None:
         """Create the parent run; write its id to ``<sweep dir>/.skymoments-parent-run``."""
@@ -84,6 +102,9 @@ class SweepTracking(Callback):
             TAG + "sweeper": str(OmegaConf.select(config, "hydra.sweeper._target_") or ""),
             TAG + "launcher": str(OmegaConf.select(config, "hydra.launcher._target_") or ""),
         }
+        period_s = heartbeat_period_s()
+        tags[HEARTBEAT_TAG] = str(now_ms())
+        tags[HEARTBEAT_PERIOD_TAG] = f"{period_s:g}"
         client = client_for(settings)
         experiment_id = ensure_experiment(client, settings, settings.experiment)
         run = with_retries(
@@ -102,6 +123,15 @@ class SweepTracking(Callback):
         self._record, self._settings = record, settings
         self._atexit = self._abandoned
         atexit.register(self._atexit)
+
+        def beat(stamp_ms: int) -> None:
+            with_retries(
+                settings,
+                "record the sweep's heartbeat",
+                lambda: client.set_tag(record.run_id, HEARTBEAT_TAG, str(int(stamp_ms))),
+            )
+
+        self._heartbeat = Heartbeat(beat, period_s).start()
         log.info(
             "sweep %s: parent MLflow run %s in %s", sweep_id, record.run_id, settings.tracking_uri
         )
@@ -116,6 +146,7 @@ class SweepTracking(Callback):
             settings = settings_from(config.tracking, base_dir=launch)
         if record is None or settings is None:
             return
+        self._stop_heartbeat()
         client = client_for(settings)
         experiment_id = record.experiment_id or with_retries(
             settings,
@@ -150,7 +181,13 @@ class SweepTracking(Callback):
         self._release()
         log.info("sweep %s ended: %s", record.sweep_id, counts)
 
+    def _stop_heartbeat(self) -> None:
+        if self._heartbeat is not None:
+            self._heartbeat.stop()
+            self._heartbeat = None
+
     def _release(self) -> None:
+        self._stop_heartbeat()
         if self._atexit is not None:
             atexit.unregister(self._atexit)
             self._atexit = None
@@ -159,14 +196,23 @@ class SweepTracking(Callback):
         self._record = None
 
     def _abandoned(self) -> None:
-        """At interpreter exit with the sweep unfinished: mark the parent FAILED."""
+        """At interpreter exit with the sweep unfinished: mark the parent FAILED, or KILLED
+        when a stop signal ended it."""
         record, settings = self._record, self._settings
         if record is None or settings is None:
             return
+        self._stop_heartbeat()
+        signal_name = stop_received()
+        status = "FAILED" if signal_name is None else "KILLED"
         try:
             client = client_for(settings)
             if client.get_run(record.run_id).info.status == "RUNNING":
-                client.set_tag(record.run_id, TAG + "error", "sweep ended before on_multirun_end")
-                client.set_terminated(record.run_id, "FAILED")
+                if signal_name is None:
+                    client.set_tag(
+                        record.run_id, TAG + "error", "sweep ended before on_multirun_end"
+                    )
+                else:
+                    client.set_tag(record.run_id, STOPPED_BY_TAG, signal_name)
+                client.set_terminated(record.run_id, status)
         except Exception as exc:  # at exit, a message is all we can give
-            log.warning("could not mark sweep parent run %s FAILED: %s", record.run_id, exc)
+            log.warning("could not mark sweep parent run %s %s: %s", record.run_id, status, exc)

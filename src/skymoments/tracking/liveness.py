@@ -45,6 +45,7 @@ __all__ = [
     "heartbeat_period_s",
     "last_heartbeat_s",
     "lost_for_s",
+    "stop_received",
     "stop_signals",
 ]
 
@@ -105,6 +106,21 @@ class RunStopped(BaseException):
         return f"{what}: run {self.run_id} is marked KILLED in {self.tracking_uri}"
 
 
+# The first stop signal any guard of this process received (a sweep's parent run, closed
+# at exit, is KILLED rather than FAILED when a job of it was stopped).
+_received: list[int] = []
+
+
+def stop_received() -> str | None:
+    """The name of the stop signal a run of this process was stopped by, or None."""
+    if not _received:
+        return None
+    try:
+        return signal.Signals(_received[0]).name
+    except ValueError:
+        return f"signal {_received[0]}"
+
+
 class _StopGuard:
     """Raise :class:`RunStopped` on the first stop signal; ignore later ones."""
 
@@ -118,6 +134,8 @@ class _StopGuard:
             log.warning("%s received while the run is being closed; ignored", signum)
             return
         self.received = int(signum)
+        if not _received:
+            _received.append(int(signum))
         raise RunStopped(signum)
 
 
