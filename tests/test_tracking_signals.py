@@ -150,6 +150,11 @@ def test_sigkilled_run_is_found_by_its_stopped_heartbeat(tmp_path, store):
     assert compare.returncode == 0, compare.stderr[-3000:]
     assert "LOST" in compare.stdout
     assert f"lost: run {run.info.run_id}" in compare.stdout
+    # The HTML report says the same as the terminal table: the run's row shows LOST.
+    report = (tmp_path / "compare.html").read_text()
+    row = report.split(f'data-run-id="{run.info.run_id}"', 1)[1].split("</tr>", 1)[0]
+    assert '<td class="text status-LOST">LOST</td>' in row
+    assert "RUNNING" not in row
     listed = _cli(tmp_path, "settle", f"tracking.root={root}")
     assert listed.returncode == 0, listed.stderr[-3000:]
     assert f"lost: run {run.info.run_id} (smoke)" in listed.stdout

@@ -20,6 +20,7 @@ from skymoments.atomic import atomic_path
 from skymoments.compare.artifacts import GRID_PATH, CalibrationCurves, fetch_curves, fetch_png
 from skymoments.compare.core import KEY_METRICS, Comparison, format_value
 from skymoments.compare.figures import coverage_figure, param_figure, z_hist_figure
+from skymoments.compare.table import shown_status
 
 __all__ = ["ReportInputs", "collect_inputs", "render_html", "write_html"]
 
@@ -32,7 +33,7 @@ table.runs th { background: #f0f0f0; }
 table.runs td.text { text-align: left; }
 tr.unranked { color: #888; }
 tr.best td { background: #eef8ee; } tr.worst td { background: #fbeeee; }
-td.status-FAILED, td.status-KILLED { color: #b00; font-weight: bold; }
+td.status-FAILED, td.status-KILLED, td.status-LOST { color: #b00; font-weight: bold; }
 .scroll { overflow-x: auto; }
 figure { margin: 1em 0; } figcaption { font-size: 0.85em; color: #555; }
 img { max-width: 100%; border: 1px solid #eee; }
@@ -106,6 +107,7 @@ def _runs_table(comp: Comparison) -> str:
     worst = comp.worst.run.run_id if comp.worst else None
     for i, entry in enumerate(comp.entries):
         run = entry.run
+        status = shown_status(run)
         classes = ["run", "ranked" if entry.ranked else "unranked"]
         if run.run_id == best:
             classes.append("best")
@@ -115,7 +117,7 @@ def _runs_table(comp: Comparison) -> str:
             f"<td>{entry.rank if entry.ranked else '-'}</td>",
             f'<td class="text">{_e(run.name or "(unnamed)")}</td>',
             f'<td class="text"><code>{_e(run.run_id)}</code></td>',
-            f'<td class="text status-{_e(run.status)}">{_e(run.status)}</td>',
+            f'<td class="text status-{_e(status)}">{_e(status)}</td>',
             f"<td>{_e(format_value(entry.value))}</td>",
         ]
         for p in comp.params:
@@ -146,6 +148,20 @@ def _unranked_list(comp: Comparison) -> str:
     return '<h3>Not ranked</h3><ul class="unranked">' + "".join(items) + "</ul>"
 
 
+def _lost_list(comp: Comparison) -> str:
+    """RUNNING runs whose heartbeat stopped, as the terminal table lists them."""
+    lost = [e.run for e in comp.entries if shown_status(e.run) == "LOST"]
+    if not lost:
+        return ""
+    items = [
+        f"<li><code>{_e(run.run_id)}</code> {_e(run.name)}: RUNNING in the store but its "
+        "heartbeat stopped (its process is gone); <code>skymoments settle "
+        "settle.mark=true</code> marks it KILLED</li>"
+        for run in lost
+    ]
+    return '<h3>Lost</h3><ul class="lost">' + "".join(items) + "</ul>"
+
+
 def render_html(
     comp: Comparison, inputs: ReportInputs, title: str = "skymoments comparison"
 ) -> str:
@@ -168,6 +184,7 @@ def render_html(
         '<h2 id="runs">Runs</h2>',
         _runs_table(comp),
         _unranked_list(comp),
+        _lost_list(comp),
     ]
     aliased = [p for p in comp.params if p.aliases]
     if aliased:
