@@ -89,3 +89,37 @@ def test_a_good_config_passes_the_same_checks():
         for experiment in ("smoke", "quickstart", "gaussian_check"):
             cfg = compose("run", overrides=[f"experiment={experiment}", "augment=synthesis"])
             validate(cfg, command="run")
+
+
+# Overrides Hydra cannot compose -> what the one line must say (what was wrong, the fix).
+COMPOSITION_CASES = {
+    ("model=nonexistent",): (
+        r"^skymoments: model=nonexistent: there is no model config named 'nonexistent'; "
+        r"choose one of dilated_resnet, spectral, unet"
+    ),
+    ("+foo.bar=1", "bad=override"): (
+        r"^skymoments: could not override 'bad': the config has no key 'bad'; fix its "
+        r"spelling, or add a new key with \+bad=override$"
+    ),
+    ("model=[",): r"^skymoments: could not parse the override 'model=\[': .*key=value",
+}
+
+
+@pytest.mark.parametrize("overrides", sorted(COMPOSITION_CASES))
+def test_overrides_that_do_not_compose_are_refused_in_one_line(
+    overrides, store, tmp_path, monkeypatch, capsys
+):
+    from skymoments.commands.run import main
+
+    root, before = store
+    monkeypatch.chdir(tmp_path)
+    argv = ["skymoments run", "experiment=smoke", f"tracking.root={root}", *overrides]
+    monkeypatch.setattr(sys, "argv", argv)
+    with pytest.raises(SystemExit) as exit_info:
+        main()
+    assert exit_info.value.code == 2
+    err = capsys.readouterr().err.strip()
+    assert len(err.splitlines()) == 1 and "Traceback" not in err, err
+    assert re.search(COMPOSITION_CASES[overrides], err), err
+    assert _statuses(root) == before
+    assert _query(root / "mlflow.db", "PRAGMA integrity_check") == [("ok",)]
