@@ -408,7 +408,10 @@ def train_moments(
     model = model.cpu().eval()
     val = dm.val_draw()
     mean_eb, std_eb = predict_moments(model, val.data_qu, batch_size=int(dm.val_batch_size))
-    std_eb, scale_metrics = recalibrate(cfg, model, val.target_eb, mean_eb, std_eb)
+    _, scale_metrics = recalibrate(cfg, model, val.target_eb, mean_eb, std_eb)
+    if scale_metrics:
+        # What the scaled model itself predicts (its float32 factor), as every reader sees it.
+        mean_eb, std_eb = predict_moments(model, val.data_qu, batch_size=int(dm.val_batch_size))
 
     perf = {}
     for name, st in (("mean", s1), ("var", s2)):
