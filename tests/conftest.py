@@ -8,6 +8,11 @@ import numpy as np
 import pytest
 
 os.environ.setdefault("MPLBACKEND", "Agg")
+# Under pytest-xdist, share the cores between the workers rather than give each worker (and
+# the commands it starts) a thread per core: oversubscribed threads slow everything down.
+if "PYTEST_XDIST_WORKER_COUNT" in os.environ and "OMP_NUM_THREADS" not in os.environ:
+    _workers = max(1, int(os.environ["PYTEST_XDIST_WORKER_COUNT"]))
+    os.environ["OMP_NUM_THREADS"] = str(max(1, (os.cpu_count() or 1) // _workers))
 
 
 @pytest.fixture(scope="session", autouse=True)

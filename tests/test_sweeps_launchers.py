@@ -68,17 +68,17 @@ def store_is_intact(root) -> None:
 
 
 @pytest.mark.slow
-def test_joblib_runs_four_jobs_in_parallel_into_one_store(tmp_path):
-    _, client = sweep(tmp_path, "hydra/launcher=joblib", "hydra.launcher.n_jobs=4", "seed=0,1,2,3")
-    parent, children = parent_and_children(client, 4)
+def test_joblib_runs_jobs_in_parallel_into_one_store(tmp_path):
+    _, client = sweep(tmp_path, "hydra/launcher=joblib", "hydra.launcher.n_jobs=2", "seed=0,1")
+    parent, children = parent_and_children(client, 2)
     assert parent.data.tags["skymoments.launcher"].endswith("JoblibLauncher")
-    # Each job is tagged with its own overrides: the four seeds, once each.
+    # Each job is tagged with its own overrides: the two seeds, once each.
     seeds = []
     for child in children:
         overrides = child.data.tags["skymoments.overrides"].split()
         seeds += [o.split("=")[1] for o in overrides if o.startswith("seed=")]
         assert child.data.params["seed"] == seeds[-1]
-    assert sorted(seeds) == ["0", "1", "2", "3"]
+    assert sorted(seeds) == ["0", "1"]
     # The jobs ran side by side (their runs overlap in time), so the store had concurrent
     # writers, and every run landed whole.
     spans = sorted((c.info.start_time, c.info.end_time) for c in children)
