@@ -78,9 +78,7 @@ def test_recalibrate_scales_the_model_and_the_validation_std():
         mean1, var1 = model(x)
     # The mean is untouched and the variance multiplied by the factor (float32 buffer).
     assert torch.equal(mean0, mean1)
-    np.testing.assert_allclose(
-        (var1 / var0).amax(dim=(0, 2, 3)).numpy(), scale, rtol=1e-6
-    )
+    np.testing.assert_allclose((var1 / var0).amax(dim=(0, 2, 3)).numpy(), scale, rtol=1e-6)
     np.testing.assert_allclose((var1 / var0).amin(dim=(0, 2, 3)).numpy(), scale, rtol=1e-6)
 
     # "none" leaves both alone.

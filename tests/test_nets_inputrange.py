@@ -78,3 +78,46 @@ def test_posterior_files_carry_the_flag_per_patch(tmp_path):
         np.testing.assert_allclose(z["patch_score"], score)
     with fits.open(fit) as hdul:
         np.testing.assert_array_equal(hdul["OUTOFRANGE"].data["FLAG"], flag)
+
+
+class _Draws:
+    """A scenario stand-in: ``draw(rng, n)`` of white Q/U maps of amplitude ``amp``."""
+
+    def __init__(self, amp):
+        self.amp, self.calls = amp, []
+
+    def draw(self, rng, n):
+        from types import SimpleNamespace
+
+        self.calls.append(n)
+        return SimpleNamespace(data_qu=self.amp * rng.standard_normal((n, 2, 16, 16)))
+
+
+def test_range_is_fitted_on_the_scaler_draw_and_more_training_draws():
+    from types import SimpleNamespace
+
+    from skymoments.moments.data import stream_generator
+    from skymoments.moments.pipeline import fit_input_range
+
+    scaler = SimpleNamespace(data_qu=_maps(8, 3))
+    mean_sc, var_sc = _Draws(1.0), _Draws(2.0)
+    ir = InputRange()
+    fit_input_range(ir, scaler, (mean_sc, var_sc), 600, seed=5, chunk=256)
+    # Chunks of 256 alternate between the two stages' scenarios: 256, 256, then 88.
+    assert mean_sc.calls == [256, 88] and var_sc.calls == [256]
+    # Reference: the per-feature min and max over the same maps, redrawn from the same
+    # stream in the same order, and the scaler draw.
+    rng = stream_generator(5, "range")
+    maps = [scaler.data_qu, 1.0 * rng.standard_normal((256, 2, 16, 16))]
+    maps += [
+        2.0 * rng.standard_normal((256, 2, 16, 16)),
+        1.0 * rng.standard_normal((88, 2, 16, 16)),
+    ]
+    want = InputRange().fit(np.concatenate(maps))
+    assert torch.equal(ir.low, want.low) and torch.equal(ir.high, want.high)
+    # None or 0 more draws: the scaler draw alone.
+    alone = InputRange()
+    fit_input_range(alone, scaler, (mean_sc, None), None, seed=5)
+    assert torch.equal(alone.high, InputRange().fit(scaler.data_qu).high)
+    with pytest.raises(ValueError, match="range_draws must be >= 0"):
+        fit_input_range(InputRange(), scaler, (mean_sc,), -1, seed=5)

@@ -69,8 +69,14 @@ def test_synthesis_progress_prints_plain_lines_when_not_a_terminal():
         for stage in ("coarse", "fine"):
             for it in range(1, 121):
                 progress(
-                    {"iteration": it, "max_iter": 120, "batch": 0, "n_batches": 2,
-                     "loss": 1.0 / it, "stage": stage}
+                    {
+                        "iteration": it,
+                        "max_iter": 120,
+                        "batch": 0,
+                        "n_batches": 2,
+                        "loss": 1.0 / it,
+                        "stage": stage,
+                    }
                 )
     lines = buf.getvalue().splitlines()
     # One line at the start of each stage, every 50 iterations and at the last: 1, 50,

@@ -65,6 +65,7 @@ class TrainSchema:
     # The run id of a stopped run to continue (skymoments.tracking.resume).
     resume: str | None = None
     fit_scalers_n: int = 256
+    range_draws: int = 4096
     gradient_clip_val: float | None = 1.0
     variance_loss: str = "gaussian_nll"
     variance_bounds: bool = True
@@ -349,6 +350,10 @@ def _check_train(cfg: DictConfig) -> None:
     for key in ("batch_size", "steps_per_epoch", "n_val", "max_epochs_mean", "max_epochs_var"):
         if not train[key] > 0:
             raise ConfigError(f"train.{key} must be a positive integer, got {train[key]!r}")
+    if not train.range_draws >= 0:
+        raise ConfigError(
+            f"train.range_draws must be >= 0 (0: the scaler draws alone), got {train.range_draws}"
+        )
     choices = {
         "variance_loss": ("gaussian_nll", "squared"),
         "variance_calibration": ("none", "validation_scale"),

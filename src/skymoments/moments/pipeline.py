@@ -152,6 +152,31 @@ def scaler_draw(train_scenario, n: int, seed: int):
     return train_scenario.draw(stream_generator(seed, "scalers"), n)
 
 
+def fit_input_range(input_range, draw, scenarios, n, seed: int, chunk: int = 256) -> None:
+    """Fit the out-of-range statistics on the scaler draw and ``n`` more training draws.
+
+    The range is that of the training inputs: the networks see thousands of them, so a
+    few hundred would flag as new what training showed (the maximum of ``N`` draws grows
+    with ``N``). ``n`` more draws (``train.range_draws``; None or 0: the scaler draw alone)
+    come from the ``range`` seed stream, in chunks, shared between the mean stage's and
+    (when it has its own) the variance stage's training scenario; only their features are
+    kept.
+    """
+    feats = [input_range.features(draw.data_qu)]
+    scenarios = [s for s in scenarios if s is not None]
+    n = int(n or 0)
+    if n < 0:
+        raise ValueError(f"train.range_draws must be >= 0, got {n}")
+    rng = stream_generator(seed, "range")
+    done = 0
+    while done < n:
+        k = min(chunk, n - done)
+        scenario = scenarios[(done // chunk) % len(scenarios)]
+        feats.append(input_range.features(scenario.draw(rng, k).data_qu))
+        done += k
+    input_range.fit_features(torch.cat(feats))
+
+
 def fit_scalers(
     train_scenario, n: int, seed: int, draw=None
 ) -> tuple[ChannelScaler, ChannelScaler]:
@@ -339,7 +364,9 @@ def train_moments(
     bounds = variance_bounds(train_scenario, target_scaler, cfg)
     if bounds is not None:
         model.positivity.set_bounds(*bounds)
-    model.input_range.fit(draw.data_qu)
+    fit_input_range(
+        model.input_range, draw, (train_scenario, var_train_scenario), tr.get("range_draws"), seed
+    )
 
     # Threads and workers: as configured, or measured on this machine when `auto` (a
     # draw of its own stream, so no training or scaler draw changes).

@@ -173,7 +173,11 @@ class InputRange(nn.Module):
     @torch.no_grad()
     def fit(self, data_qu) -> InputRange:
         """Record the per-feature range over the training patches ``data_qu``."""
-        f = self.features(data_qu)
+        return self.fit_features(self.features(data_qu))
+
+    @torch.no_grad()
+    def fit_features(self, f: torch.Tensor) -> InputRange:
+        """Record the per-feature range of precomputed :meth:`features` (n, n_features)."""
         if len(f) < 2:
             raise ValueError("the input range needs at least 2 training patches")
         self.low.copy_(f.min(dim=0).values)
