@@ -143,7 +143,7 @@ def run_study(cfg: DictConfig, run, resume_from=None) -> dict[str, float]:
     )
     print(f"figures: {SETS_NOTE}")
     run.log_params({"eval.sets": SETS_NOTE})
-    metrics = {**valid, **metrics}
+    metrics = {**valid, **result.metrics, **metrics}
     run.log_model(result.model, name="model", registered_name=cfg.tracking.get("register_as"))
     return metrics
 
