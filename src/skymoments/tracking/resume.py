@@ -15,8 +15,6 @@ unlike params); loading it parses YAML and runs nothing.
 
 from __future__ import annotations
 
-import contextlib
-import os
 import tempfile
 from dataclasses import dataclass
 from pathlib import Path
@@ -26,7 +24,7 @@ from omegaconf import OmegaConf
 
 from skymoments.tracking.flatten import flatten_config
 from skymoments.tracking.liveness import lost_for_s, mark_lost
-from skymoments.tracking.settings import settings_from
+from skymoments.tracking.settings import quiet_artifact_downloads, settings_from
 from skymoments.tracking.store import client_for, with_retries
 
 __all__ = [
@@ -141,7 +139,7 @@ def resume_point(cfg: Any, run_id: str, key: str = "train.resume") -> ResumePoin
 
 
 def _check_same_config(client, settings, run_id: str, cfg: Any, key: str) -> None:
-    with tempfile.TemporaryDirectory() as tmp, _no_progress_bar():
+    with tempfile.TemporaryDirectory() as tmp, quiet_artifact_downloads():
         try:
             local = with_retries(
                 settings,
@@ -169,21 +167,6 @@ def _check_same_config(client, settings, run_id: str, cfg: Any, key: str) -> Non
         f"{key}={run_id}: the config differs from run {run_id}'s in {text}; resume with the "
         f"run's own overrides (tag skymoments.overrides) plus {key} only"
     )
-
-
-@contextlib.contextmanager
-def _no_progress_bar():
-    """MLflow's download bar, off for one small file (the variable put back after)."""
-    name = "MLFLOW_ENABLE_ARTIFACTS_PROGRESS_BAR"
-    before = os.environ.get(name)
-    os.environ[name] = "false"
-    try:
-        yield
-    finally:
-        if before is None:
-            os.environ.pop(name, None)
-        else:
-            os.environ[name] = before
 
 
 def link_runs(cfg: Any, old_run_id: str, new_run_id: str) -> None:
