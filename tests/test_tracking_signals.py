@@ -52,10 +52,14 @@ def _start(tmp_path, root) -> subprocess.Popen:
         "trainer.enable_progress_bar=false",
         *TRAINING,
     ]
-    # A session of its own, so that a signal meant for the run never reaches pytest.
+    return _spawn(cmd, tmp_path, env)
+
+
+def _spawn(cmd, cwd, env):
+    """Start ``cmd`` in a session of its own, so a signal meant for it never reaches pytest."""
     return subprocess.Popen(
         cmd,
-        cwd=tmp_path,
+        cwd=cwd,
         env=env,
         stdout=subprocess.PIPE,
         stderr=subprocess.PIPE,
@@ -230,15 +234,7 @@ def test_stopped_sweep_parent_is_lost_or_killed(tmp_path, signum):
     (tmp_path / "config.yaml").write_text(SWEEP_CONFIG)
     started = tmp_path / "started"
     env = {**os.environ, "SKYMOMENTS_HEARTBEAT_S": str(HEARTBEAT_S)}
-    proc = subprocess.Popen(
-        [sys.executable, "app.py", "-m", "x=1", f"started={started}"],
-        cwd=tmp_path,
-        env=env,
-        stdout=subprocess.PIPE,
-        stderr=subprocess.PIPE,
-        text=True,
-        start_new_session=True,
-    )
+    proc = _spawn([sys.executable, "app.py", "-m", "x=1", f"started={started}"], tmp_path, env)
     root = tmp_path / "store"
     # The job is running and the parent has beaten since it was created.
     while proc.poll() is None:
