@@ -27,6 +27,7 @@ CASES = {
     # UNet of depth 2 (experiment=smoke) halves the side twice: 30 is not a multiple of 4.
     "patch.npix=30": r"patch\.npix=30 cannot be pooled by model\.mean .*multiple of 4.*npix=32",
     "synthesis.n_images=0": r"synthesis\.n_images must be a positive integer, got 0",
+    "train.range_margin=-1": r"train\.range_margin must be >= 0 .*got -1",
     "sky.foreground._target_=skymoments.sky.foregrounds.ImageBank": (
         r"sky\.foreground\._target_=.*ImageBank' is the training bank.*choose one of: "
         r"_target_=skymoments\.sky\.foregrounds\.Filaments"

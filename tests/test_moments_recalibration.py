@@ -96,6 +96,11 @@ def test_stored_model_keeps_its_scale_and_older_models_load_with_one():
     state = {k: v for k, v in model.state_dict().items() if k != "variance_scale"}
     old = rebuild(describe(model), state)
     assert torch.equal(old.variance_scale, torch.ones(1, 2, 1, 1))
+    # Nor the flag's margin: such a model flags at the range's edge, as when it was stored.
+    model.input_range.set_margin(0.2)
+    state = {k: v for k, v in model.state_dict().items() if k != "input_range.margin"}
+    assert float(rebuild(describe(model), state).input_range.margin) == 0.0
+    assert float(rebuild(describe(model), model.state_dict()).input_range.margin) == 0.2
 
 
 def test_unknown_method_is_refused_by_the_config_check():

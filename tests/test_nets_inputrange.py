@@ -42,12 +42,31 @@ def test_flag_fires_rarely_in_range_and_always_on_brighter_data():
     assert not ir.flag(_maps(20, 4, amp=0.5)).any()
 
 
+def test_margin_flags_only_patches_beyond_the_range_by_more_than_it():
+    ir = InputRange().fit(_maps(200, 1))
+    x = np.concatenate([_maps(40, 2), _maps(40, 3, amp=1.05), _maps(40, 4, amp=3.0)])
+    score = ir.score(x)
+    # The flag is score > margin, the score itself does not depend on the margin.
+    for margin in (0.0, 0.2, 1.0):
+        ir.set_margin(margin)
+        np.testing.assert_array_equal(ir.flag(x), score > margin)
+        np.testing.assert_array_equal(ir.score(x), score)
+    # The margins chosen here split the three groups differently (the test means something):
+    # some 5%-brighter patches are beyond the range, fewer beyond it by 0.2 spreads.
+    assert (score[40:80] > 0).sum() > (score[40:80] > 0.2).sum()
+    assert np.all(score[80:] > 1.0)
+    with pytest.raises(ValueError, match="margin must be >= 0"):
+        ir.set_margin(-0.1)
+
+
 def test_range_travels_in_the_state_dict_and_refuses_bad_input():
-    ir = InputRange().fit(_maps(50, 5))
+    ir = InputRange(margin=0.3).fit(_maps(50, 5))
     fresh = InputRange()
     fresh.load_state_dict(ir.state_dict())
     x = _maps(7, 6, amp=1.5)
     np.testing.assert_array_equal(fresh.score(x), ir.score(x))
+    assert float(fresh.margin) == 0.3
+    np.testing.assert_array_equal(fresh.flag(x), ir.flag(x))
     with pytest.raises(ValueError, match="no input-range statistics"):
         InputRange().score(x)
     bad = x.copy()

@@ -66,6 +66,7 @@ class TrainSchema:
     resume: str | None = None
     fit_scalers_n: int = 256
     range_draws: int = 4096
+    range_margin: float = 0.2
     gradient_clip_val: float | None = 1.0
     variance_loss: str = "gaussian_nll"
     variance_bounds: bool = True
@@ -353,6 +354,11 @@ def _check_train(cfg: DictConfig) -> None:
     if not train.range_draws >= 0:
         raise ConfigError(
             f"train.range_draws must be >= 0 (0: the scaler draws alone), got {train.range_draws}"
+        )
+    if not train.range_margin >= 0:
+        raise ConfigError(
+            "train.range_margin must be >= 0 (how far beyond the training range, in units of "
+            f"its spread, a patch is flagged; 0: at the range's edge), got {train.range_margin}"
         )
     choices = {
         "variance_loss": ("gaussian_nll", "squared"),

@@ -367,6 +367,7 @@ def train_moments(
     fit_input_range(
         model.input_range, draw, (train_scenario, var_train_scenario), tr.get("range_draws"), seed
     )
+    model.input_range.set_margin(float(tr.get("range_margin", 0.0)))
 
     # Threads and workers: as configured, or measured on this machine when `auto` (a
     # draw of its own stream, so no training or scaler draw changes).

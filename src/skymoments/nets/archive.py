@@ -162,7 +162,7 @@ def _owner(model: nn.Module, key: str) -> tuple[nn.Module, str]:
 
 
 # Buffers a model stored before they existed may lack; their built default is kept.
-OPTIONAL_BUFFERS = ("variance_scale",)
+OPTIONAL_BUFFERS = ("variance_scale", "input_range.margin")
 
 
 def _load_state(model: nn.Module, state: Mapping[str, torch.Tensor]) -> None:
@@ -174,7 +174,8 @@ def _load_state(model: nn.Module, state: Mapping[str, torch.Tensor]) -> None:
     """
     own = model.state_dict()
     extra = sorted(set(state) - set(own))
-    # Buffers added after a model was stored keep their defaults (``variance_scale``: 1).
+    # Buffers added after a model was stored keep their defaults (``variance_scale``: 1,
+    # ``input_range.margin``: 0, the flag of that time).
     missing = sorted(set(own) - set(state) - set(OPTIONAL_BUFFERS))
     buffers = {name for name, _ in model.named_buffers()}
     if extra or missing:

@@ -139,15 +139,16 @@ class PosteriorMoments(nn.Module):
         """Per-patch ``(flag, score)`` from the data alone, or ``(None, None)``.
 
         ``flag`` (bool, shape (n,)) is True where the Q/U data (uK, (n, 2, npix, npix)) lie
-        outside the range of the training inputs recorded at training time
-        (:class:`~skymoments.nets.scaler.InputRange`); ``score`` > 0 says by how much. A
-        model saved before the range was recorded gives ``(None, None)``.
+        beyond the range of the training inputs recorded at training time by more than its
+        margin (:class:`~skymoments.nets.scaler.InputRange`); ``score`` > 0 says by how much
+        they lie outside it. A model saved before the range was recorded gives
+        ``(None, None)``.
         """
         rng = getattr(self, "input_range", None)
         if rng is None or not bool(rng.fitted):
             return None, None
         score = rng.score(data_qu)
-        return score > 0, score
+        return score > float(rng.margin), score
 
     def scaled_mean(self, x: torch.Tensor) -> torch.Tensor:
         """Posterior mean in scaled target units from scaled data."""

@@ -112,13 +112,20 @@ class InputRange(nn.Module):
     :meth:`score` of a patch is ``max_k (f_k - max_k^train) / (max_k^train - min_k^train)``:
     positive when at least one feature lies above everything seen in training, in units of
     the training spread. Only the upper side is flagged: fainter than the faintest training
-    patch is not an extrapolation into brighter foregrounds. :meth:`flag` is ``score > 0``.
+    patch is not an extrapolation into brighter foregrounds. :meth:`flag` is
+    ``score > margin``: a network's moments degrade gradually beyond the training range,
+    not at its edge, so ``margin`` (in the same units; ``train.range_margin``) sets how far
+    beyond it a patch must lie to be flagged. On the quickstart the validation maps with
+    scores in (0, 0.2] were calibrated like the in-range ones (E z std 1.00 to 1.01), those
+    above 0.2 less so (experiments/quickstart/README.md), whence the default 0.2 there.
 
-    Buffers (``fwhm_pix``, ``quantiles``, ``low``, ``high``, ``fitted``) travel with the
-    model's state dict.
+    Buffers (``fwhm_pix``, ``quantiles``, ``low``, ``high``, ``fitted``, ``margin``) travel
+    with the model's state dict; a model stored before ``margin`` existed flags at 0.
     """
 
-    def __init__(self, fwhm_pix=(0.0, 3.0, 8.0), quantiles=(0.5, 0.99)) -> None:
+    def __init__(
+        self, fwhm_pix=(0.0, 3.0, 8.0), quantiles=(0.5, 0.99), margin: float = 0.0
+    ) -> None:
         super().__init__()
         self.register_buffer("fwhm_pix", torch.as_tensor(fwhm_pix, dtype=torch.float64))
         self.register_buffer("quantiles", torch.as_tensor(quantiles, dtype=torch.float64))
@@ -126,6 +133,19 @@ class InputRange(nn.Module):
         self.register_buffer("low", torch.zeros(n, dtype=torch.float64))
         self.register_buffer("high", torch.zeros(n, dtype=torch.float64))
         self.register_buffer("fitted", torch.tensor(False))
+        self.register_buffer("margin", torch.tensor(0.0, dtype=torch.float64))
+        self.set_margin(margin)
+
+    def set_margin(self, margin: float) -> InputRange:
+        """Flag patches whose :meth:`score` exceeds ``margin`` (>= 0, training spreads)."""
+        margin = float(margin)
+        if not margin >= 0.0:
+            raise ValueError(
+                f"the out-of-range margin must be >= 0 (in units of the training spread), "
+                f"got {margin}"
+            )
+        self.margin.fill_(margin)
+        return self
 
     @property
     def n_features(self) -> int:
@@ -197,5 +217,5 @@ class InputRange(nn.Module):
         return ((f - self.high) / spread).max(dim=1).values.numpy()
 
     def flag(self, data_qu) -> np.ndarray:
-        """Per-patch boolean: True where the data lie outside the training range."""
-        return self.score(data_qu) > 0
+        """Per-patch boolean: True where the data lie beyond the training range + margin."""
+        return self.score(data_qu) > float(self.margin)
