@@ -40,6 +40,8 @@ def logged(tmp_path_factory):
     tracking = {"kind": "local", "root": str(root), "experiment": "training", "register_as": NAME}
     cfg = OmegaConf.create({"tracking": tracking, "patch": {"npix": NPIX, "pixel_arcmin": PIXEL}})
     model = tiny_model()
+    # The training inputs' range and the flag's margin travel with the stored model.
+    model.input_range.fit(make_qu(m=8, seed=200)).set_margin(0.2)
     with tracked_run(cfg, run_name="train") as run:
         run.log_config(cfg)
         info = run.log_model(model, name="model", registered_name=run.register_as)
@@ -99,6 +101,14 @@ def test_npy_prediction_equals_the_model_called_directly(logged, tmp_path, ref):
         if ref.startswith("models:/"):
             assert head["MODELVER"] == "1" and head["MODELNAM"] == NAME
         assert "input_sha256" in head["PROVJSON"]
+        assert head["FLAGMARG"] == 0.2
+    # The per-patch flag is the stored range's score above the stored margin (numpy
+    # reference: the score recomputed from the logged model itself).
+    with np.load(tmp_path / "out" / "posterior.npz") as z:
+        score = logged["model"].input_range.score(qu)
+        np.testing.assert_allclose(z["patch_score"], score)
+        np.testing.assert_array_equal(z["patch_flag"], score > 0.2)
+    assert res.provenance["out_of_range_margin"] == 0.2
     assert (tmp_path / "out" / "posterior.png").stat().st_size > 0
 
 

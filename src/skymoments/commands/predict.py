@@ -50,7 +50,10 @@ def print_summary(result) -> None:
         # From the data alone: patches outside the training inputs' range (flag per patch
         # in the npz/FITS outputs); their error bars are an extrapolation.
         n = len(result.mean_eb)
-        table.add_row("patches outside the training range", f"{flagged} of {n}", "")
+        margin = result.provenance.get("out_of_range_margin", 0.0)
+        table.add_row(
+            f"patches beyond the training range (score > {margin:g})", f"{flagged} of {n}", ""
+        )
     console.print(table)
     for path in result.paths.values():
         console.print(f"wrote {path}")

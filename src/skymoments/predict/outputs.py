@@ -109,8 +109,9 @@ def provenance_cards(prov: Mapping[str, Any]) -> list[tuple[str, Any, str]]:
 
     Keys used: ``MODELURI``, ``MODELREF``, ``MODELNAM``, ``MODELVER``, ``MODELRUN``,
     ``INPUT``, ``INSHA256``, ``INFORMAT``, ``QUCONV``, ``INNSIDE``, ``COORDSYS``,
-    ``PREDRUN``, and per patch ``CLONi``/``CLATi`` (centre, deg) for HEALPix cuts. Long
-    strings use FITS's CONTINUE convention (astropy).
+    ``PREDRUN``, ``FLAGMARG`` (the out-of-range flag's margin), and per patch
+    ``CLONi``/``CLATi`` (centre, deg) for HEALPix cuts. Long strings use FITS's CONTINUE
+    convention (astropy).
     """
     spec = (
         ("MODELURI", "model_uri", "MLflow model URI"),
@@ -125,6 +126,7 @@ def provenance_cards(prov: Mapping[str, Any]) -> list[tuple[str, Any, str]]:
         ("INNSIDE", "nside", "HEALPix resolution of the input map"),
         ("COORDSYS", "coordsys", "coordinates of the input map and centres"),
         ("PREDRUN", "prediction_run_id", "MLflow run of this prediction"),
+        ("FLAGMARG", "out_of_range_margin", "out-of-range flag: patch score > this"),
     )
     cards = []
     for key, name, comment in spec:

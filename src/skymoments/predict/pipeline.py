@@ -475,7 +475,7 @@ def run_prediction(
     model = _load(source, cfg.tracking).to(device)
     say(f"forward pass on {len(data)} patch(es) ({device})")
     mean, std = predict_moments(model, data, batch_size=opts.batch_size, device=device)
-    # Per-patch flag from the data alone: outside the training inputs' recorded range.
+    # Per-patch flag from the data alone: beyond the training inputs' recorded range.
     patch_flag, patch_score = model.out_of_range(data)
     hp_maps = None
     if kind == "healpix":
@@ -486,8 +486,13 @@ def run_prediction(
 
     prov = _provenance(source, inp, centres, nside_out)
     if patch_flag is not None:
+        margin = float(model.input_range.margin)
         prov["out_of_range_patches"] = int(patch_flag.sum())
-        say(f"{int(patch_flag.sum())} of {len(patch_flag)} patch(es) outside the training range")
+        prov["out_of_range_margin"] = margin
+        say(
+            f"{int(patch_flag.sum())} of {len(patch_flag)} patch(es) beyond the training "
+            f"inputs' range by more than {margin:g} of its spread (patch_score > {margin:g})"
+        )
     result = PredictionResult(
         mean_eb=mean,
         std_eb=std,
