@@ -78,10 +78,23 @@ def test_synthesis_progress_prints_plain_lines_when_not_a_terminal():
                         "stage": stage,
                     }
                 )
+        # The closing call (the mean over every image) is its own line, not another batch's.
+        progress(
+            {
+                "iteration": 120,
+                "max_iter": 120,
+                "batch": 2,
+                "n_batches": 2,
+                "loss": 0.25,
+                "n_images": 16,
+                "stage": "done",
+            }
+        )
     lines = buf.getvalue().splitlines()
     # One line at the start of each stage, every 50 iterations and at the last: 1, 50,
-    # 100, 120 per stage; no bar control characters in a log file.
-    assert len(lines) == 8
+    # 100, 120 per stage, then the closing line; no bar control characters in a log file.
+    assert len(lines) == 9
     assert lines[0].startswith("synthesis batch 1/2 (half resolution): iter 1/120")
-    assert lines[-1].startswith("synthesis batch 1/2: iter 120/120, loss 0.008333")
+    assert lines[-2].startswith("synthesis batch 1/2: iter 120/120, loss 0.008333")
+    assert lines[-1].startswith("synthesis done: 16 maps, mean loss 0.25")
     assert "\x1b" not in buf.getvalue()

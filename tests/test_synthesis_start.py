@@ -57,6 +57,7 @@ def test_coarse_start_runs_both_stages_and_lowers_the_starting_loss():
     # Progress is reported from both stages, the half-resolution one first.
     stages = [d["stage"] for d in seen[:-1]]
     assert stages == ["coarse", "fine"], stages
+    assert seen[-1]["stage"] == "done" and seen[-1]["images_done"] == 2
     assert plain.coarse_iterations == [] and coarse.coarse_iterations == [2]
     # The same Gaussian field (the same initial loss) with its large scales already fitted
     # starts the full-resolution stage lower.

@@ -149,6 +149,15 @@ def _line_progress(console, every: int = 50):
     last = {"key": None}
 
     def progress(info: dict) -> None:
+        if info.get("stage") == "done":
+            # The closing call: the mean over every image, not another batch's line.
+            console.print(
+                f"synthesis done: {int(info['n_images'])} maps, mean loss "
+                f"{float(info['loss']):.4g}, {time.perf_counter() - t0:.0f} s",
+                highlight=False,
+                soft_wrap=True,
+            )
+            return
         key = (info["batch"], info.get("stage"))
         it = int(info["iteration"])
         if key == last["key"] and it % every and it < int(info["max_iter"]):

@@ -442,8 +442,8 @@ def synthesize(
     progress : callable, optional
         Called with a dict (``batch``, ``n_batches``, ``iteration``, ``max_iter``,
         ``loss`` = mean loss per image of the batch, ``images_done``, ``n_images``,
-        ``stage`` = ``"coarse"`` or ``"fine"``) every 10 iterations of either stage and at
-        the end.
+        ``stage`` = ``"coarse"`` or ``"fine"``) every 10 iterations of either stage, and
+        once at the end with ``stage="done"`` and the mean loss over every image.
     chunk : int
         Maps per evaluation of the moments inside a batch (memory, not results).
     device, dtype
@@ -549,6 +549,7 @@ def synthesize(
                 "loss": float(np.mean(np.concatenate(losses))),
                 "images_done": settings.n_images,
                 "n_images": settings.n_images,
+                "stage": "done",
             }
         )
     return SynthesisResult(
