@@ -6,9 +6,11 @@
 Each row adds one change to the row above it, from the former protocol (squared variance
 loss, unbounded log-variance, variance network on the data alone, no translations, one bank
 shared by both stages, no validation-set variance scale) to the committed quickstart.
-Every row runs twice: with
-``augment=oracle`` (fresh generator foregrounds for every training pair, the upper bound)
-and with the quickstart's own ``augment=synthesis`` (the single image and its WPH bank).
+Every row runs twice: with ``augment=oracle`` (fresh generator foregrounds for every
+training pair, the upper bound) and with the quickstart's own ``augment=synthesis`` (the
+single image and its WPH bank). A row whose config equals an earlier row's (the oracle of
+``translations`` and ``split``, which have nothing to translate or split, is the oracle of
+``sees_mean``) reports that run instead of repeating it.
 The figures are those of the test set (``calib/*``, ``eval/*``: the ``eval`` stream, which
 chose nothing); ``--quick`` shortens training (4 + 3 epochs of 20 steps) to rank changes
 cheaply: its figures are not the quickstart's.
@@ -108,13 +110,23 @@ def main() -> None:
     head = " | ".join(f"{label} E / B" for label, _ in KEYS)
     print(f"| row | augment | {head} | flagged | wall s |")
     print("|" + " --- |" * (len(KEYS) + 4))
+    done: dict[tuple, tuple] = {}
     for row in args.rows.split(","):
         for augment in args.augment.split(","):
             ov = [f"augment={augment}", *overrides_for(row), *(QUICK if args.quick else []), *extra]
             if augment == "oracle":
                 # Nothing to translate or split with fresh generator draws.
                 ov = [o for o in ov if not o.startswith(("augment.translations", "augment.var"))]
+            # The effective config decides the run: a row whose overrides (the last value of
+            # each key) equal an earlier row's is that run again (the oracle of translations
+            # and split is the oracle of sees_mean), so it is reported, not rerun.
+            key = tuple(sorted(dict(o.split("=", 1) for o in ov).items()))
+            if key in done:
+                metrics, wall, same = done[key]
+                print(fmt_row(row, augment, metrics, wall) + f" (the {same} run)", flush=True)
+                continue
             metrics, wall = run_once(root, ov)
+            done[key] = (metrics, wall, f"{row} / {augment}")
             print(fmt_row(row, augment, metrics, wall), flush=True)
 
 
