@@ -80,6 +80,8 @@ METRICS: tuple[MetricSpec, ...] = (
     MetricSpec("calib/z_std_stddec_max", "z std decile max", 1.0, "ideal"),
     # Unflagged test maps only (inside the training inputs' range).
     MetricSpec("calib/z_std_inrange", "z std in range", 1.0, "ideal"),
+    # The fraction of test maps the out-of-range flag marks (one number, no component).
+    MetricSpec("eval/flagged_fraction", "flagged fraction", 0.0, "min"),
     # The same in the patch's outer eval.edge_px-pixel band and in its interior
     # (calibration.edges): calib/z_std_edge_C, calib/z_std_interior_C, ...
     *(
@@ -139,7 +141,7 @@ SUMMARY_KEYS: tuple[str, ...] = tuple(
     "calib/z_std_stddec_max",
     "calib/z_std_inrange",
     "valid/variance_scale",
-)
+) + ("eval/flagged_fraction",)
 
 
 def _spec(name: str) -> MetricSpec | None:
