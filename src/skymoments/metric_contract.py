@@ -127,21 +127,25 @@ KEY_METRICS: tuple[tuple[str, str, float | None], ...] = tuple(
 )
 # The end-of-run summary of `run` and `evaluate`: the calibration of E, then of B, then the
 # errors against the baselines.
-SUMMARY_KEYS: tuple[str, ...] = tuple(
-    f"{s}_{c}"
-    for c in COMPONENTS
-    for s in ("calib/z_mean", "calib/z_std", "calib/cov68", "calib/cov95")
-) + _per_component(
-    "eval/mse",
-    "eval/mse_ratio_wiener",
-    "eval/mse_ratio_exact",
-    "eval/var_ratio_exact",
-    "calib/crps",
-    "calib/z_std_stddec_min",
-    "calib/z_std_stddec_max",
-    "calib/z_std_inrange",
-    "valid/variance_scale",
-) + ("eval/flagged_fraction",)
+SUMMARY_KEYS: tuple[str, ...] = (
+    tuple(
+        f"{s}_{c}"
+        for c in COMPONENTS
+        for s in ("calib/z_mean", "calib/z_std", "calib/cov68", "calib/cov95")
+    )
+    + _per_component(
+        "eval/mse",
+        "eval/mse_ratio_wiener",
+        "eval/mse_ratio_exact",
+        "eval/var_ratio_exact",
+        "calib/crps",
+        "calib/z_std_stddec_min",
+        "calib/z_std_stddec_max",
+        "calib/z_std_inrange",
+        "valid/variance_scale",
+    )
+    + ("eval/flagged_fraction",)
+)
 
 
 def _spec(name: str) -> MetricSpec | None:
