@@ -116,7 +116,7 @@ class InputRange(nn.Module):
     ``score > margin``: a network's moments degrade gradually beyond the training range,
     not at its edge, so ``margin`` (in the same units; ``train.range_margin``) sets how far
     beyond it a patch must lie to be flagged. On the quickstart the validation maps with
-    scores in (0, 0.2] were calibrated like the in-range ones (E z std 1.00 to 1.01), those
+    scores in (0, 0.2] were calibrated like the in-range ones (E z std 0.99 to 1.00), those
     above 0.2 less so (experiments/quickstart/README.md), whence the default 0.2 there.
 
     Buffers (``fwhm_pix``, ``quantiles``, ``low``, ``high``, ``fitted``, ``margin``) travel
