@@ -147,8 +147,7 @@ class PosteriorMoments(nn.Module):
         rng = getattr(self, "input_range", None)
         if rng is None or not bool(rng.fitted):
             return None, None
-        score = rng.score(data_qu)
-        return score > float(rng.margin), score
+        return rng.flag_and_score(data_qu)
 
     def scaled_mean(self, x: torch.Tensor) -> torch.Tensor:
         """Posterior mean in scaled target units from scaled data."""

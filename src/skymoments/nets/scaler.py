@@ -216,6 +216,11 @@ class InputRange(nn.Module):
         spread = torch.clamp(self.high - self.low, min=1e-12)
         return ((f - self.high) / spread).max(dim=1).values.numpy()
 
+    def flag_and_score(self, data_qu) -> tuple[np.ndarray, np.ndarray]:
+        """Per-patch ``(flag, score)`` from one feature pass: ``flag`` is ``score > margin``."""
+        score = self.score(data_qu)
+        return score > float(self.margin), score
+
     def flag(self, data_qu) -> np.ndarray:
         """Per-patch boolean: True where the data lie beyond the training range + margin."""
-        return self.score(data_qu) > float(self.margin)
+        return self.flag_and_score(data_qu)[0]
