@@ -27,20 +27,20 @@ import time
 from pathlib import Path
 
 import healpy as hp
-import mlflow
 import numpy as np
 from omegaconf import OmegaConf
 
 from skymoments.config import conf_dir
 from skymoments.maps.geometry import FlatPatch
-from skymoments.maps.sky_cuts import patch_sky_positions
+from skymoments.maps.sky_cuts import patch_sky_positions, sky_locations
 from skymoments.predict import pipeline
 from skymoments.sky.cmb import CMBCosmology, cmb_spectra
+from skymoments.tracking import download_artifact
 
 
 def _corr(a: np.ndarray, b: np.ndarray) -> float:
-    a, b = a - a.mean(), b - b.mean()
-    return float((a * b).sum() / np.sqrt((a * a).sum() * (b * b).sum()))
+    """Pearson correlation of two arrays over all their elements (numpy's)."""
+    return float(np.corrcoef(np.ravel(a), np.ravel(b))[0, 1])
 
 
 def _scalar_at(alm: np.ndarray, lmax: int, centres, patch: FlatPatch) -> np.ndarray:
@@ -48,14 +48,11 @@ def _scalar_at(alm: np.ndarray, lmax: int, centres, patch: FlatPatch) -> np.ndar
     import ducc0
 
     vec, _ = patch_sky_positions(centres, patch)
-    flat = vec.reshape(-1, 3)
-    theta = np.arccos(np.clip(flat[:, 2], -1.0, 1.0))
-    phi = np.mod(np.arctan2(flat[:, 1], flat[:, 0]), 2.0 * np.pi)
     out = ducc0.sht.synthesis_general(
         alm=np.ascontiguousarray(alm[None]),
         spin=0,
         lmax=lmax,
-        loc=np.ascontiguousarray(np.stack([theta, phi], axis=1)),
+        loc=sky_locations(vec),
         epsilon=1e-7,
     )
     return out[0].reshape(vec.shape[:3])
@@ -75,13 +72,11 @@ def main() -> None:
     centres = [[float(v) for v in c.split(",")] for c in args.centres.split()]
 
     tracking = {"kind": "local", "root": str(args.root.absolute()), "experiment": "predict"}
-    client = mlflow.MlflowClient(tracking_uri=f"sqlite:///{args.root.absolute() / 'mlflow.db'}")
     run_id = args.model
     if args.model.startswith("models:/"):
         raise SystemExit("give the training run's id: its config names the CMB spectra")
     with tempfile.TemporaryDirectory() as tmp:
-        cfg_path = client.download_artifacts(run_id, "config/resolved.yaml", tmp)
-        train_cfg = OmegaConf.load(cfg_path)
+        train_cfg = OmegaConf.load(download_artifact(tracking, run_id, "config/resolved.yaml", tmp))
     patch = FlatPatch(int(train_cfg.patch.npix), float(train_cfg.patch.pixel_arcmin))
     spectra = cmb_spectra(CMBCosmology.from_mapping(train_cfg.sky.cmb))
     lmax = min(args.lmax, spectra.lmax)

@@ -44,6 +44,7 @@ __all__ = [
     "cut_patches",
     "patch_sky_positions",
     "sky_harmonics",
+    "sky_locations",
 ]
 
 # Requested accuracy of ducc0's evaluation at arbitrary positions (relative, in the L2 sense
@@ -139,6 +140,18 @@ def patch_sky_positions(centres, patch: FlatPatch) -> tuple[np.ndarray, np.ndarr
     return vec, angle
 
 
+def sky_locations(vec: np.ndarray) -> np.ndarray:
+    """``(theta, phi)`` in radians, shape (m, 2), of unit vectors ``vec`` (..., 3).
+
+    Colatitude in [0, pi] and longitude in [0, 2 pi): the ``loc`` layout of ducc0's
+    ``synthesis_general``.
+    """
+    flat = np.asarray(vec, dtype=float).reshape(-1, 3)
+    theta = np.arccos(np.clip(flat[:, 2], -1.0, 1.0))
+    phi = np.mod(np.arctan2(flat[:, 1], flat[:, 0]), 2.0 * np.pi)
+    return np.ascontiguousarray(np.stack([theta, phi], axis=1))
+
+
 def cut_patches(
     harmonics: SkyHarmonics, centres, patch: FlatPatch, epsilon: float = SYNTHESIS_EPSILON
 ) -> np.ndarray:
@@ -162,14 +175,11 @@ def cut_patches(
     import ducc0
 
     vec, angle = patch_sky_positions(centres, patch)
-    flat = vec.reshape(-1, 3)
-    theta = np.arccos(np.clip(flat[:, 2], -1.0, 1.0))
-    phi = np.mod(np.arctan2(flat[:, 1], flat[:, 0]), 2.0 * np.pi)
     qu = ducc0.sht.synthesis_general(
         alm=harmonics.alm_eb,
         spin=2,
         lmax=harmonics.lmax,
-        loc=np.ascontiguousarray(np.stack([theta, phi], axis=1)),
+        loc=sky_locations(vec),
         epsilon=float(epsilon),
         nthreads=_threads(),
     )
