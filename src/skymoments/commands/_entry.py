@@ -14,6 +14,7 @@ from omegaconf import DictConfig
 
 from skymoments.config import conf_dir
 from skymoments.config.composition import one_line_composition_errors
+from skymoments.heap import keep_freed_memory
 from skymoments.tracking.liveness import RunStopped
 
 # Third-party chatter that buries our own output: Lightning's start-up banners and tips,
@@ -69,6 +70,7 @@ def hydra_task(fn: Callable[[DictConfig], object]) -> Callable[[], object]:
     def task(cfg: DictConfig) -> object:
         started[0] = True
         quiet_third_party()
+        keep_freed_memory()  # in every task's process, launcher workers included
         try:
             return fn(cfg)
         except EXPECTED_ERRORS as err:

@@ -89,6 +89,8 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
+from skymoments.synthesis.stack_moments import StackMoments
+from skymoments.synthesis.stack_moments import layout as stack_layout
 from skymoments.synthesis.wavelets import WaveletBank, check_bank_args, wavelet_bank
 
 FAMILIES = (
@@ -234,6 +236,8 @@ class WPHStatistics:
         self.sym_pairs = [(a, b) for a in range(c) for b in range(a, c)]
         self.all_pairs = [(a, b) for a in range(c) for b in range(c)]
         self._build_shift_tables()
+        self.psi_stack = psi[:, None, :, None]  # (J, 1, T, 1, ny, nx): StackMoments' layout
+        self._stack_layout = stack_layout(self)
         self.norm0 = torch.ones(c, config.n_scales, self.n_theta, dtype=dtype, device=device)
         self.norm1 = torch.ones_like(self.norm0)
         self.norm_low = torch.ones(c, dtype=dtype, device=device)
@@ -285,6 +289,11 @@ class WPHStatistics:
             self.s11_kernel_half_all.imag.contiguous(),
         )
         self.phase_half_ri = [(t.real.contiguous(), t.imag.contiguous()) for t in self.phase_half]
+        # Their adjoints, for the backward of stack_moments.StackMoments.
+        self.phase_half_ri_t = [
+            (re.T.contiguous(), im.T.contiguous()) for re, im in self.phase_half_ri
+        ]
+        self.phase_full_adj = [t.conj().T.contiguous() for t in self.phase_full]
         # spectrum family: annulus indicator matrix (N, n_bins) divided by the mode count, and
         # the E/B rotation cos 2phi, sin 2phi of maps/eb.py (phi = atan2(w_y, w_x)).
         nb = self.config.spectrum_bins
@@ -398,10 +407,10 @@ class WPHStatistics:
         x = self._as_tensor(x)
         b, c = x.shape[:2]
         cfg, n, nt = self.config, self.npix, self.n_theta
-        xf, w, wf = self._transform(x)
+        xf = torch.fft.fft2(x)
         out: dict[str, list[torch.Tensor]] = {f: [] for f in FAMILIES}
         tags: dict[str, list] = {f: [] for f in FAMILIES}
-        n0, n1 = self.norm0, self.norm1  # (C, J, T)
+        n1 = self.norm1  # (C, J, T)
         xflat = xf.reshape(b, c, n)
         # wave_power for all scales at once from the cross-spectra of x:
         # conj(W_a_hat) W_b_hat = conj(x_a_hat) x_b_hat psi_hat^2.
@@ -410,18 +419,17 @@ class WPHStatistics:
         s_cross = None
         if c == 2:
             s_cross = (torch.conj(xflat[:, :1]) * xflat[:, 1:]) @ self.s11_kernel_full_all
-        # Phase-harmonic maps of order 0, mean removed (only their covariances enter).
-        # Real and imaginary parts as real tensors: the pixel-space work below is real
-        # arithmetic, several times faster on a CPU than the same complex operations
-        # (which also promote real operands to complex copies).
-        w_re, w_im = (t.contiguous() for t in torch.view_as_real(w).unbind(-1))
-        mod = torch.sqrt(w_re * w_re + w_im * w_im + _TINY)
-        mod0 = mod - mod.mean(dim=(-2, -1), keepdim=True)
-        m0f = torch.fft.fft2(mod0).reshape(b, c, cfg.n_scales, nt, n)
-        wflat = wf.reshape(b, c, cfg.n_scales, nt, n)
-        # Per-scale views by unbind: its backward stacks the per-scale gradients once,
-        # where indexing scale by scale would zero-fill a full-size gradient per scale.
-        m0f_j, wflat_j = m0f.unbind(2), wflat.unbind(2)
+        # The families on the wavelet stack, forward and backward written out once
+        # (stack_moments.py), on the stack laid out as [scale, map, orientation, channel].
+        wf = self.psi_stack * xf[None, :, None]
+        flat = StackMoments.apply(wf, self)
+        k = 0
+        for fam, blocks in self._stack_layout.items():
+            for shape, tag in blocks:
+                size = int(np.prod(shape))
+                out[fam].append(flat[:, k : k + size].reshape(b, *shape))
+                tags[fam].append(tag)
+                k += size
         oh, of = 0, 0
         for j in range(cfg.n_scales):
             th, tf = len(self.shifts_half[j]), len(self.shifts_full[j])
@@ -433,70 +441,6 @@ class WPHStatistics:
                 out["wave_power"].append(blk / (n1[0, j] * n1[1, j])[None, None, :, None])
                 tags["wave_power"].append(("neg", j))
             oh, of = oh + nt * th, of + nt * tf
-            mj = m0f_j[j]  # (b, C, T, N)
-            p = mj.real**2 + mj.imag**2
-            ph_re, ph_im = self.phase_half_ri[j]
-            blk = torch.complex(p @ ph_re, p @ ph_im)
-            out["envelope"].append(blk / (n0[:, j] ** 2)[None, :, :, None])
-            tags["envelope"].append("inv")
-            if c == 2:
-                blk = (torch.conj(mj[:, :1]) * mj[:, 1:]) @ self.phase_full[j]
-                out["envelope"].append(blk / (n0[0, j] * n0[1, j])[None, None, :, None])
-                tags["envelope"].append(("neg", j))
-            # S01 for every ordered channel pair (a, b): conj(|W_a| hat) W_b hat.
-            prod = torch.conj(mj)[:, :, None] * wflat_j[j][:, None]  # (b, C, C, T, N)
-            blk = prod @ self.phase_full[j]
-            norm = n0[:, None, j] * n1[None, :, j]  # (C, C, T)
-            out["envelope_wave"].append(blk / norm[None, :, :, :, None])
-            tags["envelope_wave"].append(("neg", j))
-        # Cross-scale families at tau = 0, one scale offset at a time, as matrix products
-        # over pixels of all (channel, orientation) pairs at once (cheaper on a CPU than
-        # gathering the few pairs we keep one by one).
-        shp = (b, c, cfg.n_scales, nt, n)
-        js = cfg.n_scales
-        modr = mod0.reshape(shp).permute(0, 2, 1, 3, 4).reshape(b, js, c * nt, n)
-        # (b, J, 2 C T, N): real parts of all (channel, orientation) pairs, then imaginary.
-        wri = torch.stack([w_re.reshape(shp), w_im.reshape(shp)], dim=1)
-        wri = wri.permute(0, 3, 1, 2, 4, 5).reshape(b, js, 2 * c * nt, n)
-        tt = np.arange(nt)
-        w_re, w_im = w_re.reshape(shp), w_im.reshape(shp)
-        inv_r = 1.0 / mod.reshape(shp)
-        h_re, h_im = w_re, w_im  # [W]^(2^dj), updated in the loop
-        for dj in range(1, cfg.scale_reach + 1):
-            if dj >= cfg.n_scales:
-                break
-            jn = cfg.n_scales - dj
-            # C01: <(|W_j1| - mean) W_j2> for all (a, t1) x (b, t2).
-            full = (modr[:, :jn] @ wri[:, dj:].transpose(-1, -2)).reshape(b, jn, c, nt, 2, c, nt)
-            full_re, full_im = full[:, :, :, :, 0], full[:, :, :, :, 1]
-            for dl in range(-cfg.orientation_reach, cfg.orientation_reach + 1):
-                t2 = (tt + dl) % nt
-                re = full_re[:, :, :, tt, :, t2]  # (T, b, jn, C, C)
-                im = full_im[:, :, :, tt, :, t2]
-                if not cfg.full_angle:
-                    # Index t + L is the wavelet turned by pi: conj(W_t) for a real map.
-                    wrapped = torch.as_tensor((tt + dl < 0) | (tt + dl >= nt), device=im.device)
-                    im = torch.where(wrapped[:, None, None, None, None], -im, im)
-                m = torch.complex(re, im).permute(1, 3, 4, 2, 0) / n  # (b, C, C, jn, T)
-                norm = n0[:, None, :jn, :] * n1[None, :, dj:, :][..., t2]
-                out["xscale_envelope"].append(m / norm)
-                tags["xscale_envelope"].append("conj")
-            # xscale_phase: [W_j2]^(2^dj) has the frequency of W_j1 (arXiv:1810.12136,
-            # Sec. 4). [z]^(2k) = ([z]^k)^2 / |z|, so the harmonics of every order come from
-            # one squaring and one division of the whole stack per order (complex pow and
-            # the phase z / |z| are slower, and |z| is already known).
-            # Only scales j2 >= dj are needed from here on: the stack shrinks by one scale.
-            h_re, h_im, ir = h_re[:, :, 1:], h_im[:, :, 1:], inv_r[:, :, dj:]
-            h_re, h_im = (h_re * h_re - h_im * h_im) * ir, 2.0 * h_re * h_im * ir
-            # sum_u conj(W_j1)[W_j2]^k: real and imaginary parts from one real product
-            # over pixels of (re, im) x (re, im) for all channel pairs.
-            a1 = torch.stack([w_re[:, :, :jn], w_im[:, :, :jn]], dim=1)  # (b, 2, C, jn, T, N)
-            a2 = torch.stack([h_re, h_im], dim=1)
-            q = torch.einsum("bpajtn,bqcjtn->bpqacjt", a1, a2)
-            m = torch.complex(q[:, 0, 0] + q[:, 1, 1], q[:, 0, 1] - q[:, 1, 0]) / n
-            norm = n1[:, None, :jn] * n1[None, :, dj:]
-            out["xscale_phase"].append(m / norm)
-            tags["xscale_phase"].append("conj")
         # Scaling-function moments: channel means and low-pass covariances.
         mean = x.mean(dim=(-2, -1))
         out["lowpass"].append((mean / self.norm_mean).to(self.cdtype))
