@@ -2,8 +2,11 @@
 
 1. the WPH loss evaluation (forward + backward, chunks of 2 maps, as the synthesis runs it)
    over the FFT-only cost of the same transforms (the FFTs the evaluation needs, run
-   forward and again for the backward), for the implementation before the speed work
-   (``--before``, a git revision of ``synthesis/wph.py``) and the current one, interleaved;
+   forward and again for the backward), for earlier implementations (``--before``, git
+   revisions of ``synthesis/wph.py``: the first one, ed15cfe, and the autograd one before
+   the hand-written backward of ``synthesis/stack_moments.py``, 6c61e48) and the current
+   one, interleaved. The process keeps freed memory (``skymoments.heap``, as every
+   ``skymoments`` command does); ``SKYMOMENTS_KEEP_HEAP=0`` measures without;
 2. L-BFGS iterations to a quality: a Gaussian start (the former default) and the
    coarse-to-fine start, each counted until its loss reaches the Gaussian start's loss at
    ``--iters`` iterations (a coarse iteration weighted by the cost of a 32x32 evaluation
@@ -13,6 +16,7 @@
    (``conf/synthesis/default.yaml``): seconds per map.
 
     python experiments/synthesis_speed/bench.py [--threads 1] [--iters 200] [--bank 64]
+        [--parts 1 2 3] [--before REV ...]
 """
 
 from __future__ import annotations
@@ -29,6 +33,7 @@ from pathlib import Path
 import numpy as np
 import torch
 
+from skymoments.heap import keep_freed_memory
 from skymoments.maps.geometry import FlatPatch
 from skymoments.sky.foregrounds import make_foreground
 from skymoments.synthesis import wph as current
@@ -50,11 +55,12 @@ def load_before(rev: str):
         ).stdout
     except (OSError, subprocess.CalledProcessError):
         return None
-    path = Path(tempfile.mkdtemp()) / "wph_before.py"
+    name = f"wph_{rev}"
+    path = Path(tempfile.mkdtemp()) / f"{name}.py"
     path.write_text(src)
-    spec = importlib.util.spec_from_file_location("wph_before", path)
+    spec = importlib.util.spec_from_file_location(name, path)
     mod = importlib.util.module_from_spec(spec)
-    sys.modules["wph_before"] = mod
+    sys.modules[name] = mod
     spec.loader.exec_module(mod)
     return mod
 
@@ -125,19 +131,22 @@ def main() -> None:
     ap.add_argument("--threads", type=int, default=1)
     ap.add_argument("--iters", type=int, default=200)
     ap.add_argument("--bank", type=int, default=64, help="maps in the timed bank (0: skip)")
-    ap.add_argument("--before", default="ed15cfe", help="git revision of the former wph.py")
+    ap.add_argument(
+        "--before", nargs="*", default=["ed15cfe", "6c61e48"], help="git revisions of wph.py"
+    )
     ap.add_argument("--reps", type=int, default=15)
     ap.add_argument("--seed", type=int, default=2024)
     ap.add_argument("--parts", nargs="+", type=int, default=[1, 2, 3], help="which of 1 2 3")
     args = ap.parse_args()
     torch.set_num_threads(args.threads)
+    heap = keep_freed_memory()
     patch = FlatPatch(64, 3.0)
     fg = make_foreground("filaments")
     target = fg.draw(patch, np.random.default_rng(args.seed), 1)[0]
     defaults = SynthesisSettings()
     print(
         f"load average at start: {os.getloadavg()[0]:.2f} (2-core machine); "
-        f"threads {args.threads}; torch {torch.__version__}"
+        f"threads {args.threads}; torch {torch.__version__}; freed memory kept: {heap}"
     )
 
     t = target / target.std()
@@ -153,20 +162,21 @@ def compare_speed(args, target, t, defaults, patch) -> None:
     # 1. Evaluation over the FFT floor, before and after, interleaved.
     start = np.repeat(t[None], 2, 0) + 0.3 * np.random.default_rng(0).standard_normal((2, *t.shape))
     fns = {"fft": fft_floor(start.shape, defaults)}
-    before = load_before(args.before)
-    if before is not None:
-        fns["before"] = evaluation(before, t, defaults, start)
-    else:
-        print(f"(no git revision {args.before}: the 'before' evaluation is skipped)")
-    fns["after"] = evaluation(current, t, defaults, start)
+    for rev in args.before:
+        before = load_before(rev)
+        if before is not None:
+            fns[rev] = evaluation(before, t, defaults, start)
+        else:
+            print(f"(no git revision {rev}: its evaluation is skipped)")
+    fns["now"] = evaluation(current, t, defaults, start)
     med = interleaved(fns, args.reps)
-    line = f"evaluation of 2 maps (forward + backward): FFT floor {1e3 * med['fft']:.1f} ms"
-    for k in ("before", "after"):
-        if k in med:
-            line += f"; {k} {1e3 * med[k]:.1f} ms = {med[k] / med['fft']:.1f}x floor"
-    print(line)
-    if "before" in med:
-        print(f"  speed-up after/before: {med['before'] / med['after']:.2f}x")
+    print(f"evaluation of 2 maps (forward + backward): FFT floor {1e3 * med['fft']:.2f} ms")
+    for k in fns:
+        if k != "fft":
+            print(
+                f"  {k}: {1e3 * med[k]:.1f} ms = {med[k] / med['fft']:.1f}x floor"
+                + ("" if k == "now" else f"; now {med[k] / med['now']:.2f}x faster")
+            )
 
     # Cost of a half-resolution evaluation (the coarse stage's WPHConfig) relative to a
     # full one, measured side by side: it weighs the coarse iterations below.
@@ -200,7 +210,8 @@ def compare_speed(args, target, t, defaults, patch) -> None:
         m = quality_metrics(res.images, target, patch)
         print(
             f"  {name}: {it} full-resolution + {coarse} coarse iterations "
-            f"(cost {cost[name]} full-iteration equivalents), final loss {res.history[-1]:.3f},"
+            f"(cost {'-' if cost[name] is None else f'{cost[name]:.1f}'} full-iteration "
+            f"equivalents), final loss {res.history[-1]:.3f},"
             f" {sec:.1f} s; " + ", ".join(f"{k.split('/')[1]}={v:.3f}" for k, v in m.items())
         )
     if cost["coarse"]:

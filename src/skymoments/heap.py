@@ -7,8 +7,9 @@ heap back to the system as soon as more than 128 KiB is free (``mallopt(3)``,
 MiB many times per step (the WPH evaluation's wavelet stack, the networks' activations);
 each time the memory comes back from the system it is zero-filled page by page, one page
 fault per 4 KiB. Measured on the project's 2-core machine: 6,700 page faults per WPH loss
-evaluation of 2 maps, and the evaluation 1.37x faster with these settings
-(``experiments/synthesis_speed/bench.py`` prints both side by side).
+evaluation of 2 maps without these settings, 13 with them; a bank of 8 syntheses 41-42 s
+without, 38-39 s with (``SKYMOMENTS_KEEP_HEAP=0`` and ``=1`` of
+``experiments/synthesis_speed/bench.py --parts 3 --bank 8``, alternated).
 
 :func:`keep_freed_memory` serves allocations up to 32 MiB from the heap and keeps up to
 1 GiB of freed memory for reuse. The peak memory of a run does not change; memory freed
