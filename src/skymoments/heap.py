@@ -1,8 +1,8 @@
 """Keep freed memory inside the process: glibc ``malloc`` settings for array work.
 
-By default glibc serves every allocation above a threshold that adapts up to 32 MiB with
-a fresh ``mmap`` once the threshold is passed, and it gives freed memory at the top of the
-heap back to the system as soon as more than 128 KiB is free (``mallopt(3)``,
+By default glibc serves an allocation above a threshold (128 KiB at start, raised as
+large blocks are freed) with a fresh ``mmap``, and gives freed memory at the top of the
+heap back to the system once more than 128 KiB of it is free (``mallopt(3)``,
 ``M_MMAP_THRESHOLD`` and ``M_TRIM_THRESHOLD``). Torch allocates and frees arrays of a few
 MiB many times per step (the WPH evaluation's wavelet stack, the networks' activations);
 each time the memory comes back from the system it is zero-filled page by page, one page
