@@ -65,16 +65,18 @@ def layout(stats) -> dict[str, list[tuple[tuple[int, ...], object]]]:
 class StackMoments(torch.autograd.Function):
     """Normalized ``envelope``, ``envelope_wave``, ``xscale_envelope``, ``xscale_phase``.
 
-    ``forward(ctx, wf, stats)``: ``wf`` the wavelet stack in Fourier space, complex,
-    shape ``[J, b, T, C, ny, nx]``; ``stats`` the :class:`~skymoments.synthesis.wph.
+    ``forward(ctx, xf, stats)``: ``xf`` the maps in Fourier space, complex, shape
+    ``(b, C, ny, nx)``, whose wavelet stack is ``wf = psi * xf`` of shape
+    ``[J, b, T, C, ny, nx]``; ``stats`` the :class:`~skymoments.synthesis.wph.
     WPHStatistics` whose tables and normalization are used. Returns one complex tensor
     ``(b, n)``: the blocks of the four families in the order of ``WPHStatistics.forward``,
     each flattened; :func:`layout` gives their shapes.
     """
 
     @staticmethod
-    def forward(ctx, wf: torch.Tensor, stats) -> torch.Tensor:
+    def forward(ctx, xf: torch.Tensor, stats) -> torch.Tensor:
         cfg = stats.config
+        wf = stats.psi_stack * xf[None, :, None]
         jj, b, nt, c = wf.shape[:4]
         n = stats.npix
         w = torch.fft.ifft2(wf)
@@ -163,21 +165,22 @@ class StackMoments(torch.autograd.Function):
         per_j = 2 if c == 2 else 1
         for j in range(jj):
             afj = af[j]
-            gj = g_env[per_j * j] / (n0[:, j] ** 2)[None, :, :, None]  # (b, C, T, th)
+            # P = |Af|^2: g_Af = 2 g_P Af (the 2 folded into the small gradient).
+            gj = g_env[per_j * j] * (2.0 / n0[:, j] ** 2)[None, :, :, None]  # (b, C, T, th)
             gj = gj.permute(0, 2, 1, 3).reshape(-1, gj.shape[-1])
             ph_re_t, ph_im_t = stats.phase_half_ri_t[j]
-            g_p = (gj.real @ ph_re_t + gj.imag @ ph_im_t).reshape(afj.shape)  # [b, t, c, N]
-            g_af[j] = 2.0 * g_p * afj
+            g_p = torch.addmm(gj.imag @ ph_im_t, gj.real, ph_re_t).view(afj.shape)  # [b,t,c,N]
+            torch.mul(afj, g_p, out=g_af[j])
             phc = stats.phase_full_adj[j]
             if c == 2:
                 gc = g_env[per_j * j + 1][:, 0] / (n0[0, j] * n0[1, j])[None, :, None]
                 g_r = (gc.reshape(-1, gc.shape[-1]) @ phc).reshape(*gc.shape[:-1], n)  # [b, t, N]
-                g_af[j, :, :, 1] += g_r * afj[:, :, 0]
-                g_af[j, :, :, 0] += torch.conj(g_r) * afj[:, :, 1]
+                g_af[j, :, :, 1].addcmul_(g_r, afj[:, :, 0])
+                g_af[j, :, :, 0].addcmul_(torch.conj(g_r), afj[:, :, 1])
             norm = n0[:, None, j] * n1[None, :, j]
             gw = (g_envw[j] / norm[None, :, :, :, None]).permute(0, 3, 1, 2, 4)  # [b, t, a, c, tf]
             g_r = (gw.reshape(-1, gw.shape[-1]) @ phc).reshape(*gw.shape[:-1], n)  # [b, t, a, c, N]
-            g_wf[j] = (g_r * afj[:, :, :, None]).sum(dim=2)
+            torch.sum(g_r * afj[:, :, :, None], dim=2, out=g_wf[j])
             g_af[j] += (torch.conj(g_r) * wff[j][:, :, None]).sum(dim=3)
         # Back to pixel space: Af = fft2(A0), A0 real.
         g_a0 = torch.fft.ifft2(g_af.reshape(wf.shape), norm="forward").real.reshape(a0.shape)
@@ -234,9 +237,15 @@ class StackMoments(torch.autograd.Function):
         g_amp.add_(g_a0).sub_(g_a0.mean(dim=-1, keepdim=True)).mul_(inv_amp)
         g_wri.addcmul_(wri, g_amp[:, :, :, None])  # g_w += g_|W| w / |W|
         g_w = torch.complex(g_wri[:, :, :, 0], g_wri[:, :, :, 1]).reshape(wf.shape)
-        g_out = torch.fft.fft2(g_w, norm="forward")  # fft2(.) / N
-        g_out += g_wf.reshape(wf.shape)
-        return g_out, None
+        g_wf = torch.fft.fft2(g_w, norm="forward").add_(g_wf.reshape(wf.shape))  # fft2(.) / N
+        # wf = psi * xf: g_xf = sum over scales and orientations of psi g_wf, accumulated
+        # one (j, t) at a time (a reduction over both axes at once strides through memory).
+        g_xf = torch.zeros(wf.shape[1:2] + wf.shape[3:], dtype=wf.dtype, device=wf.device)
+        psi = stats.psi_stack
+        for j in range(jj):
+            for t in range(nt):
+                g_xf.add_(g_wf[j, :, t] * psi[j, 0, t])
+        return g_xf, None
 
 
 def _pairs(nt: int, dl: int, full_angle: bool, device, dtype):

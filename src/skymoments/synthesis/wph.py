@@ -421,8 +421,7 @@ class WPHStatistics:
             s_cross = (torch.conj(xflat[:, :1]) * xflat[:, 1:]) @ self.s11_kernel_full_all
         # The families on the wavelet stack, forward and backward written out once
         # (stack_moments.py), on the stack laid out as [scale, map, orientation, channel].
-        wf = self.psi_stack * xf[None, :, None]
-        flat = StackMoments.apply(wf, self)
+        flat = StackMoments.apply(xf, self)
         k = 0
         for fam, blocks in self._stack_layout.items():
             for shape, tag in blocks:
