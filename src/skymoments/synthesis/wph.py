@@ -71,8 +71,10 @@ Computation. Moments with shifts are evaluated in Fourier space: with ``A_hat = 
 ``M(tau) = N^-2 sum_w conj(A_hat(w)) B_hat(w) exp(i w.tau)`` (Parseval), a matrix product
 with a small table of phases. ``wave_power`` needs no FFT beyond ``x_hat`` since
 ``conj(W_a_hat) W_b_hat = conj(x_a_hat) x_b_hat psi_hat^2``. The tau = 0 families are means
-of products in pixel space. The work is done scale by scale, so no stack of phase
-harmonics for all pairs is ever materialized; :class:`WPHStatistics` works on any batch,
+of products in pixel space, as matrix products over pixels of all (channel, orientation)
+pairs at once. The four families on the wavelet stack (``envelope`` to ``xscale_phase``)
+are computed by :mod:`skymoments.synthesis.stack_moments`, whose backward is written out
+by hand (autograd differentiates the rest); :class:`WPHStatistics` works on any batch,
 and the synthesis calls it on chunks of a few images.
 
 Symmetries (tested): the moments are exactly invariant under whole-pixel translations of
