@@ -298,6 +298,22 @@ def _fit_stage(
     }
 
 
+def mean_network_node(node, scenario):
+    """The mean network's config node, with ``zero_mean`` set for a periodic scenario.
+
+    On a periodic patch (``patch.margin`` 0) the target E/B maps have no l = 0 mode
+    (``maps/eb.py``), so the posterior mean has none: the mean network's output loses its
+    spatial mean (:func:`skymoments.nets.layers.remove_spatial_mean`), in training and
+    prediction alike. A cut-out's E/B has a mean of its own, so there it is kept. A
+    ``zero_mean`` already in the node (``+model.mean.zero_mean=false``) is left as given.
+    The key lands in the stored architecture, so a reloaded model does the same.
+    """
+    if "zero_mean" in node:
+        return node
+    plain = OmegaConf.to_container(node, resolve=True)
+    return OmegaConf.create({**plain, "zero_mean": int(getattr(scenario, "margin", 0)) == 0})
+
+
 def train_moments(
     cfg: DictConfig,
     train_scenario,
@@ -353,7 +369,7 @@ def train_moments(
     input_scaler, target_scaler = fit_scalers(train_scenario, 0, seed, draw=draw)
     torch.manual_seed(torch_seed(seed, "init"))
     sees_mean = bool(cfg.model.get("variance_sees_mean", False))
-    mean_net = build_network(cfg.model.mean, key="model.mean")
+    mean_net = build_network(mean_network_node(cfg.model.mean, train_scenario), key="model.mean")
     var_net = build_network(cfg.model.variance, key="model.variance")
     _check_variance_inputs(cfg.model.variance, input_scaler, target_scaler, sees_mean)
     positivity = str(cfg.model.get("positivity", "softplus"))

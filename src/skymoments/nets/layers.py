@@ -7,6 +7,7 @@ network then has no edges, and a convolution commutes with whole-pixel translati
 
 from __future__ import annotations
 
+import torch
 from torch import nn
 
 NORMS = ("batch", "group", "instance", "none")
@@ -92,3 +93,21 @@ class ConvNormAct(nn.Sequential):
             make_norm(norm, c_out),
             make_activation(activation),
         )
+
+
+def check_bool(value, name: str) -> bool:
+    """Return ``value`` if it is a bool, else raise a ValueError naming ``name``."""
+    if not isinstance(value, bool):
+        raise ValueError(f"{name} must be true or false, got {value!r}")
+    return value
+
+
+def remove_spatial_mean(x: torch.Tensor) -> torch.Tensor:
+    """``x`` (n, C, ny, nx) minus its mean over the two pixel axes, per map and channel.
+
+    The output layer of a mean network whose target has no l = 0 mode, as E/B of a periodic
+    patch have none (``maps/eb.py`` sets it to zero): the posterior mean then has none
+    either, and since the constant map is orthogonal to every such truth, removing a
+    predicted constant lowers each map's squared error by exactly its square.
+    """
+    return x - x.mean(dim=(-2, -1), keepdim=True)

@@ -9,11 +9,13 @@ from skymoments.nets.layers import (
     NORMS,
     PADDINGS,
     ConvNormAct,
+    check_bool,
     check_choice,
     check_positive_int,
     conv3x3,
     make_activation,
     make_norm,
+    remove_spatial_mean,
 )
 
 
@@ -51,6 +53,8 @@ class DilatedResNet(nn.Module):
         Dilation cycle over the blocks, e.g. (1, 2, 4, 8).
     norm, padding_mode, activation : str
         As in :class:`skymoments.nets.UNet`.
+    zero_mean : bool
+        As in :class:`skymoments.nets.UNet`.
     """
 
     def __init__(
@@ -63,12 +67,14 @@ class DilatedResNet(nn.Module):
         norm: str = "batch",
         padding_mode: str = "circular",
         activation: str = "gelu",
+        zero_mean: bool = False,
     ) -> None:
         super().__init__()
         check_positive_int(in_channels, "in_channels")
         check_positive_int(out_channels, "out_channels")
         check_positive_int(width, "width")
         check_positive_int(n_blocks, "n_blocks")
+        self.zero_mean = check_bool(zero_mean, "zero_mean")
         check_choice(norm, NORMS, "norm")
         check_choice(padding_mode, PADDINGS, "padding_mode")
         dilations = [check_positive_int(d, "dilations[i]") for d in dilations]
@@ -88,4 +94,5 @@ class DilatedResNet(nn.Module):
 
     def forward(self, x: torch.Tensor) -> torch.Tensor:
         """Map ``x`` of shape (n, in_channels, ny, nx) to (n, out_channels, ny, nx)."""
-        return self.head(self.blocks(self.stem(x)))
+        x = self.head(self.blocks(self.stem(x)))
+        return remove_spatial_mean(x) if self.zero_mean else x

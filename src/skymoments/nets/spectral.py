@@ -7,7 +7,12 @@ import math
 import torch
 from torch import nn
 
-from skymoments.nets.layers import check_positive_int, make_activation
+from skymoments.nets.layers import (
+    check_bool,
+    check_positive_int,
+    make_activation,
+    remove_spatial_mean,
+)
 
 
 class SpectralConv2d(nn.Module):
@@ -73,6 +78,8 @@ class SpectralNet(nn.Module):
         Fourier modes kept per axis and sign (>= 1); ``npix // 2`` keeps them all.
     activation : str
         As in :class:`skymoments.nets.UNet`.
+    zero_mean : bool
+        As in :class:`skymoments.nets.UNet`.
     """
 
     def __init__(
@@ -83,12 +90,14 @@ class SpectralNet(nn.Module):
         n_layers: int = 4,
         modes: int = 16,
         activation: str = "gelu",
+        zero_mean: bool = False,
     ) -> None:
         super().__init__()
         check_positive_int(in_channels, "in_channels")
         check_positive_int(out_channels, "out_channels")
         check_positive_int(width, "width")
         check_positive_int(n_layers, "n_layers")
+        self.zero_mean = check_bool(zero_mean, "zero_mean")
         check_positive_int(modes, "modes")
         self.lift = nn.Conv2d(in_channels, width, kernel_size=1)
         self.spectral = nn.ModuleList(SpectralConv2d(width, width, modes) for _ in range(n_layers))
@@ -112,4 +121,5 @@ class SpectralNet(nn.Module):
             x = spec(x) + point(x)
             if i < len(self.acts):
                 x = self.acts[i](x)
-        return self.project(x)
+        x = self.project(x)
+        return remove_spatial_mean(x) if self.zero_mean else x

@@ -9,8 +9,10 @@ from skymoments.nets.layers import (
     NORMS,
     PADDINGS,
     ConvNormAct,
+    check_bool,
     check_choice,
     check_positive_int,
+    remove_spatial_mean,
 )
 
 
@@ -36,6 +38,9 @@ class UNet(nn.Module):
     padding_mode : {"circular", "zeros", "reflect", "replicate"}
         ``circular`` for periodic patches (the default and the right choice for them).
     activation : {"gelu", "relu", "silu", "leaky_relu", "tanh"}
+    zero_mean : bool
+        Subtract each output map's spatial mean (:func:`skymoments.nets.layers.
+        remove_spatial_mean`; for a target with no l = 0 mode).
     """
 
     def __init__(
@@ -47,11 +52,13 @@ class UNet(nn.Module):
         norm: str = "batch",
         padding_mode: str = "circular",
         activation: str = "gelu",
+        zero_mean: bool = False,
     ) -> None:
         super().__init__()
         check_positive_int(in_channels, "in_channels")
         check_positive_int(out_channels, "out_channels")
         self.depth = check_positive_int(depth, "depth")
+        self.zero_mean = check_bool(zero_mean, "zero_mean")
         check_positive_int(width, "width")
         check_choice(norm, NORMS, "norm")
         check_choice(padding_mode, PADDINGS, "padding_mode")
@@ -90,4 +97,5 @@ class UNet(nn.Module):
         x = skips.pop()
         for up, dec in zip(self.ups, self.decoders, strict=True):
             x = dec(torch.cat([up(x), skips.pop()], dim=1))
-        return self.head(x)
+        x = self.head(x)
+        return remove_spatial_mean(x) if self.zero_mean else x
