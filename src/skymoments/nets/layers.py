@@ -108,6 +108,7 @@ def remove_spatial_mean(x: torch.Tensor) -> torch.Tensor:
     The output layer of a mean network whose target has no l = 0 mode, as E/B of a periodic
     patch have none (``maps/eb.py`` sets it to zero): the posterior mean then has none
     either, and since the constant map is orthogonal to every such truth, removing a
-    predicted constant lowers each map's squared error by exactly its square.
+    predicted constant lowers each map's mean squared error by exactly that constant
+    squared (``tests/test_nets_zero_mean.py``).
     """
     return x - x.mean(dim=(-2, -1), keepdim=True)
