@@ -32,6 +32,7 @@ from __future__ import annotations
 
 import numpy as np
 import torch
+from torch.autograd.function import once_differentiable
 
 # |z| below this has no meaningful phase (wph._TINY, repeated to keep this module leaf).
 _TINY = 1e-30
@@ -148,6 +149,7 @@ class StackMoments(torch.autograd.Function):
         return torch.cat([t.reshape(b, -1) for t in blocks], dim=1)
 
     @staticmethod
+    @once_differentiable  # first derivatives only (all L-BFGS needs); a second one raises
     def backward(ctx, g: torch.Tensor):
         stats = ctx.stats
         cfg = stats.config
