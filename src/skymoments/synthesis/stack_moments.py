@@ -34,8 +34,10 @@ import numpy as np
 import torch
 from torch.autograd.function import once_differentiable
 
-# |z| below this has no meaningful phase (wph._TINY, repeated to keep this module leaf).
-_TINY = 1e-30
+# |z| below this (relative to the map's unit) has no meaningful phase; the phase harmonic
+# of order k >= 2 is evaluated with |z| clamped there (its value there is ~0 anyway). Also
+# wph.py's floor under the square root of |P|.
+TINY = 1e-30
 
 
 def _real_re_im(w: torch.Tensor) -> torch.Tensor:
@@ -66,6 +68,18 @@ def layout(stats) -> dict[str, list[tuple[tuple[int, ...], object]]]:
     return out
 
 
+def split_blocks(flat: torch.Tensor, blocks) -> dict[str, list[torch.Tensor]]:
+    """The blocks of ``flat`` (b, n), per family, shaped as ``blocks`` (:func:`layout`) says."""
+    b, k, out = flat.shape[0], 0, {}
+    for fam, entries in blocks.items():
+        out[fam] = []
+        for shape, _ in entries:
+            size = int(np.prod(shape))
+            out[fam].append(flat[:, k : k + size].reshape(b, *shape))
+            k += size
+    return out
+
+
 class StackMoments(torch.autograd.Function):
     """Normalized ``envelope``, ``envelope_wave``, ``xscale_envelope``, ``xscale_phase``.
 
@@ -74,7 +88,8 @@ class StackMoments(torch.autograd.Function):
     ``[J, b, T, C, ny, nx]``; ``stats`` the :class:`~skymoments.synthesis.wph.
     WPHStatistics` whose tables and normalization are used. Returns one complex tensor
     ``(b, n)``: the blocks of the four families in the order of ``WPHStatistics.forward``,
-    each flattened; :func:`layout` gives their shapes.
+    each flattened; :func:`layout` gives their shapes (``stats.stack_layout``), by which
+    the backward splits its gradient the same way.
     """
 
     @staticmethod
@@ -86,7 +101,7 @@ class StackMoments(torch.autograd.Function):
         w = torch.fft.ifft2(wf)
         wri = _real_re_im(w)  # [j, b, t, 2, c, N]
         wr, wi = wri[:, :, :, 0], wri[:, :, :, 1]
-        amp = torch.sqrt(wr * wr + wi * wi + _TINY)  # [j, b, t, c, N]
+        amp = torch.sqrt(wr * wr + wi * wi + TINY)  # [j, b, t, c, N]
         inv_amp = 1.0 / amp
         a0 = amp - amp.mean(dim=-1, keepdim=True)
         af = torch.fft.fft2(a0.reshape(wf.shape)).reshape(jj, b, nt, c, n)
@@ -142,8 +157,6 @@ class StackMoments(torch.autograd.Function):
             xph.append(m / norm)
         blocks = env + envw + xenv + xph
         ctx.stats = stats
-        ctx.shapes = [t.shape[1:] for t in blocks]
-        ctx.counts = (len(env), len(envw), len(xenv), len(xph))
         ctx.levels = levels[1:]
         ctx.save_for_backward(wf, wri, inv_amp, a0, af)
         return torch.cat([t.reshape(b, -1) for t in blocks], dim=1)
@@ -158,13 +171,9 @@ class StackMoments(torch.autograd.Function):
         n = stats.npix
         n0, n1 = stats.norm0, stats.norm1
         wff = wf.reshape(jj, b, nt, c, n)
-        sizes = [int(np.prod(s)) for s in ctx.shapes]
-        gb = [
-            t.reshape(b, *s) for t, s in zip(torch.split(g, sizes, dim=1), ctx.shapes, strict=True)
-        ]
-        n_env, n_envw, n_xenv, _ = ctx.counts
-        g_env, g_envw = gb[:n_env], gb[n_env : n_env + n_envw]
-        g_xenv, g_xph = gb[n_env + n_envw : n_env + n_envw + n_xenv], gb[n_env + n_envw + n_xenv :]
+        gb = split_blocks(g, stats.stack_layout)
+        g_env, g_envw = gb["envelope"], gb["envelope_wave"]
+        g_xenv, g_xph = gb["xscale_envelope"], gb["xscale_phase"]
         g_af = torch.empty_like(af)  # every scale's first term assigns, the others add
         g_wf = torch.empty_like(wff)
         per_j = 2 if c == 2 else 1

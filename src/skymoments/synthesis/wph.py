@@ -91,8 +91,8 @@ from dataclasses import dataclass
 import numpy as np
 import torch
 
-from skymoments.synthesis.stack_moments import StackMoments
-from skymoments.synthesis.stack_moments import layout as stack_layout
+from skymoments.synthesis.stack_moments import TINY, StackMoments, split_blocks
+from skymoments.synthesis.stack_moments import layout as layout_of_stack
 from skymoments.synthesis.wavelets import WaveletBank, check_bank_args, wavelet_bank
 
 FAMILIES = (
@@ -115,9 +115,6 @@ LEGACY_FAMILIES = {
     "L": "lowpass",
     "P": "spectrum",
 }
-# |z| below this (relative to the map's unit) has no meaningful phase; the phase harmonic
-# of order k >= 2 is evaluated with |z| clamped there (its value there is ~0 anyway).
-_TINY = 1e-30
 
 
 @dataclass(frozen=True)
@@ -239,7 +236,7 @@ class WPHStatistics:
         self.all_pairs = [(a, b) for a in range(c) for b in range(c)]
         self._build_shift_tables()
         self.psi_stack = psi[:, None, :, None]  # (J, 1, T, 1, ny, nx): StackMoments' layout
-        self._stack_layout = stack_layout(self)
+        self.stack_layout = layout_of_stack(self)  # StackMoments' blocks: (shape, tag)
         self.norm0 = torch.ones(c, config.n_scales, self.n_theta, dtype=dtype, device=device)
         self.norm1 = torch.ones_like(self.norm0)
         self.norm_low = torch.ones(c, dtype=dtype, device=device)
@@ -423,14 +420,10 @@ class WPHStatistics:
             s_cross = (torch.conj(xflat[:, :1]) * xflat[:, 1:]) @ self.s11_kernel_full_all
         # The families on the wavelet stack, forward and backward written out once
         # (stack_moments.py), on the stack laid out as [scale, map, orientation, channel].
-        flat = StackMoments.apply(xf, self)
-        k = 0
-        for fam, blocks in self._stack_layout.items():
-            for shape, tag in blocks:
-                size = int(np.prod(shape))
-                out[fam].append(flat[:, k : k + size].reshape(b, *shape))
-                tags[fam].append(tag)
-                k += size
+        blocks = split_blocks(StackMoments.apply(xf, self), self.stack_layout)
+        for fam, entries in self.stack_layout.items():
+            out[fam] += blocks[fam]
+            tags[fam] += [tag for _, tag in entries]
         oh, of = 0, 0
         for j in range(cfg.n_scales):
             th, tf = len(self.shifts_half[j]), len(self.shifts_full[j])
@@ -457,7 +450,7 @@ class WPHStatistics:
         # constrain only indirectly (our addition, a j = 0 scaling moment with phi = delta).
         ys = [x[:, i] for i in range(c)]
         if c == 2:
-            ys.append(torch.sqrt(x[:, 0] ** 2 + x[:, 1] ** 2 + _TINY))
+            ys.append(torch.sqrt(x[:, 0] ** 2 + x[:, 1] ** 2 + TINY))
         ys = torch.stack(ys, dim=1)
         dev = (ys - ys.mean(dim=(-2, -1), keepdim=True)).abs()
         onep = torch.stack([dev.mean(dim=(-2, -1)), dev.pow(3).mean(dim=(-2, -1))], dim=-1)
